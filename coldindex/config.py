@@ -1,0 +1,273 @@
+"""Configuration: a TOML file turned into frozen dataclasses, validated once.
+
+The file has an ``[inputs]`` table of paths, one header-mapping table per input
+(``[columns]`` for the casts, ``[ice_columns]``, ``[trajectory_columns]``), and
+one table per command (``[index]``; later stages add theirs). Unknown keys and
+wrong types are refused with a message naming the key and the allowed values.
+Paths are resolved relative to the config file.
+"""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+from coldindex.errors import ConfigError
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+METHODS = ("kriging", "idw")
+FAMILIES = ("exponential", "spherical", "matern", "gaussian")
+VARIOGRAM_CHOICES = (*FAMILIES, "auto")
+
+
+@dataclass(frozen=True)
+class IndexOptions:
+    """Settings of the index computation (``coldindex index`` / ``[index]``).
+
+    Attributes
+    ----------
+    thresholds
+        Temperature thresholds for the cold-water areas. [°C]
+    grid_km
+        Side of the square equal-area grid cells. [km]
+    sims
+        Conditional simulations per year (0 = off).
+    seed
+        Base seed; each year draws from ``SeedSequence([seed, year])``.
+    min_casts
+        Fewest usable casts for a year to get indices.
+    min_coverage
+        Lowest share of the domain within 1.5 station spacings of a cast.
+    method
+        ``kriging`` or ``idw``.
+    variogram
+        Variogram family or ``auto`` (chosen by pooled cross-validation, then frozen).
+    per_year_family
+        Opt-in: choose the family separately for every year.
+    freeze_tolerance_c
+        Freezing-point tolerance of the sensor below TEOS-10's freezing point. [°C]
+    max_bottom_c
+        Highest plausible bottom temperature. [°C]
+    default_salinity
+        Practical salinity used for the freezing point when a cast has none.
+    """
+
+    thresholds: tuple[float, ...] = (2.0, 0.0)
+    grid_km: float = 5.0
+    sims: int = 200
+    seed: int = 20261201
+    min_casts: int = 30
+    min_coverage: float = 0.75
+    method: str = "kriging"
+    variogram: str = "auto"
+    per_year_family: bool = False
+    freeze_tolerance_c: float = 0.2
+    max_bottom_c: float = 20.0
+    default_salinity: float = 34.0
+
+    def __post_init__(self) -> None:
+        _check(len(self.thresholds) > 0, "index.thresholds", "at least one threshold", "[]")
+        _check(len(set(self.thresholds)) == len(self.thresholds), "index.thresholds",
+               "distinct values", self.thresholds)
+        _check(1.0 <= self.grid_km <= 100.0, "index.grid_km", "a value in 1..100 km",
+               self.grid_km)
+        _check(0 <= self.sims <= 5000, "index.sims", "a whole number in 0..5000", self.sims)
+        _check(self.min_casts >= 5, "index.min_casts", "at least 5", self.min_casts)
+        _check(0.0 <= self.min_coverage <= 1.0, "index.min_coverage", "a share in 0..1",
+               self.min_coverage)
+        _check(self.method in METHODS, "index.method", f"one of {', '.join(METHODS)}",
+               self.method)
+        _check(self.variogram in VARIOGRAM_CHOICES, "index.variogram",
+               f"one of {', '.join(VARIOGRAM_CHOICES)}", self.variogram)
+        _check(0.0 <= self.freeze_tolerance_c <= 2.0, "index.freeze_tolerance_c",
+               "a value in 0..2 °C", self.freeze_tolerance_c)
+        _check(0.0 < self.default_salinity <= 42.0, "index.default_salinity",
+               "a practical salinity in 0..42", self.default_salinity)
+
+
+@dataclass(frozen=True)
+class Inputs:
+    """Input paths (``[inputs]``), resolved relative to the config file."""
+
+    casts: Path | None = None
+    domain: Path | None = None
+    bathymetry: Path | None = None
+    ice: Path | None = None
+    trajectories: tuple[Path, ...] = ()
+
+
+@dataclass(frozen=True)
+class Config:
+    """A whole validated configuration."""
+
+    inputs: Inputs = field(default_factory=Inputs)
+    columns: Mapping[str, str] = field(default_factory=dict)
+    ice_columns: Mapping[str, str] = field(default_factory=dict)
+    trajectory_columns: Mapping[str, str] = field(default_factory=dict)
+    index: IndexOptions = field(default_factory=IndexOptions)
+    source: Path | None = None
+
+
+# Tables later stages fill in; accepted now so a config can be written ahead.
+_RESERVED_TABLES = ("classify", "shifts", "skill", "project", "report", "covariates")
+
+
+def _check(ok: bool, key: str, expected: str, got: object) -> None:
+    if not ok:
+        raise ConfigError(f"{key} needs to be {expected}, got: {got!r}.")
+
+
+def _coerce(key: str, value: Any, default: Any) -> Any:
+    """Coerce a TOML value to the type of the dataclass default, or refuse it."""
+    if isinstance(default, bool):
+        _check(isinstance(value, bool), key, "true or false", value)
+        return value
+    if isinstance(default, int):
+        _check(isinstance(value, int) and not isinstance(value, bool), key, "a whole number",
+               value)
+        return value
+    if isinstance(default, float):
+        _check(isinstance(value, (int, float)) and not isinstance(value, bool), key,
+               "a number", value)
+        return float(value)
+    if isinstance(default, str):
+        _check(isinstance(value, str), key, "a string", value)
+        return value
+    if isinstance(default, tuple):
+        _check(isinstance(value, list), key, "a list", value)
+        return tuple(float(v) for v in value)
+    return value  # pragma: no cover
+
+
+def index_options_from_mapping(table: Mapping[str, Any], where: str = "index") -> IndexOptions:
+    """Build :class:`IndexOptions` from a mapping, refusing unknown keys.
+
+    Parameters
+    ----------
+    table
+        Key/value pairs, e.g. the ``[index]`` table of a config.
+    where
+        Table name used in messages.
+
+    Returns
+    -------
+    IndexOptions
+        The validated options.
+    """
+    defaults = IndexOptions()
+    allowed = {f.name for f in fields(IndexOptions)}
+    kwargs: dict[str, Any] = {}
+    for key, value in table.items():
+        if key not in allowed:
+            raise ConfigError(f"{where}.{key} is not a known key; allowed keys: "
+                              f"{', '.join(sorted(allowed))}.")
+        kwargs[key] = _coerce(f"{where}.{key}", value, getattr(defaults, key))
+    return IndexOptions(**kwargs)
+
+
+def parse_column_map(text: str | None, option: str = "--columns") -> dict[str, str]:
+    """Parse ``ours=theirs,ours=theirs`` into ``{ours: theirs}``.
+
+    Parameters
+    ----------
+    text
+        The option value, or None.
+    option
+        Option name used in messages.
+
+    Returns
+    -------
+    dict
+        Mapping from our column name to the header in the user's file.
+    """
+    if not text:
+        return {}
+    out: dict[str, str] = {}
+    for part in text.split(","):
+        if not part.strip():
+            continue
+        if "=" not in part:
+            raise ConfigError(f"{option} needs pairs ours=theirs separated by commas, got: "
+                              f"{part.strip()!r}.")
+        ours, theirs = (s.strip() for s in part.split("=", 1))
+        if not ours or not theirs:
+            raise ConfigError(f"{option} needs pairs ours=theirs with both names, got: "
+                              f"{part.strip()!r}.")
+        out[ours] = theirs
+    return out
+
+
+def _string_map(table: Any, key: str) -> dict[str, str]:
+    _check(isinstance(table, dict), key, "a table of ours = \"theirs\" pairs", table)
+    for k, v in table.items():
+        _check(isinstance(v, str), f"{key}.{k}", "a header name (string)", v)
+    return dict(table)
+
+
+def load_config(path: Path) -> Config:
+    """Read and validate a TOML configuration file.
+
+    Parameters
+    ----------
+    path
+        The TOML file.
+
+    Returns
+    -------
+    Config
+        The validated configuration, paths resolved relative to the file.
+    """
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ConfigError(f"Config file {path} does not exist; give the path of a TOML "
+                          "file.") from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"Config file {path} is not valid TOML ({exc}); fix the syntax "
+                          "at that place.") from None
+    return config_from_mapping(raw, base=path.parent, source=path)
+
+
+def config_from_mapping(raw: Mapping[str, Any], base: Path, source: Path | None = None
+                        ) -> Config:
+    """Validate a parsed config mapping; see :func:`load_config`."""
+    known = {"inputs", "columns", "ice_columns", "trajectory_columns", "index",
+             *_RESERVED_TABLES}
+    for key in raw:
+        if key not in known:
+            raise ConfigError(f"[{key}] is not a known table; allowed tables: "
+                              f"{', '.join(sorted(known))}.")
+    inputs_raw = raw.get("inputs", {})
+    _check(isinstance(inputs_raw, dict), "inputs", "a table", inputs_raw)
+    input_keys = {f.name for f in fields(Inputs)}
+    paths: dict[str, Any] = {}
+    for key, value in inputs_raw.items():
+        if key not in input_keys:
+            raise ConfigError(f"inputs.{key} is not a known key; allowed keys: "
+                              f"{', '.join(sorted(input_keys))}.")
+        if key == "trajectories":
+            items = value if isinstance(value, list) else [value]
+            _check(all(isinstance(v, str) for v in items), "inputs.trajectories",
+                   "a path or a list of paths", value)
+            paths[key] = tuple((base / v) for v in items)
+        else:
+            _check(isinstance(value, str), f"inputs.{key}", "a path (string)", value)
+            paths[key] = base / value
+    for key in _RESERVED_TABLES:
+        _check(isinstance(raw.get(key, {}), dict), key, "a table", raw.get(key))
+    return Config(
+        inputs=Inputs(**paths),
+        columns=_string_map(raw.get("columns", {}), "columns"),
+        ice_columns=_string_map(raw.get("ice_columns", {}), "ice_columns"),
+        trajectory_columns=_string_map(raw.get("trajectory_columns", {}),
+                                       "trajectory_columns"),
+        index=index_options_from_mapping(raw.get("index", {})),
+        source=source,
+    )

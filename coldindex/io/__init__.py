@@ -1,0 +1,1 @@
+"""The only modules that open files: readers validate inputs, writers write atomically."""

@@ -1,0 +1,243 @@
+"""Readers: casts, ice and trajectory tables, domain polygons and bathymetry.
+
+Tables are read as text first (UTF-8, then Latin-1), their delimiter sniffed,
+headers mapped to ours (``ours=theirs``), and required columns checked; values
+stay strings so that quality control can tell a blank from a non-number.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from collections.abc import Mapping
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from coldindex.domain import Domain, domain_from_geojson
+from coldindex.errors import InputError
+from coldindex.schema import CASTS, ICE, TRAJECTORIES, Table
+
+_DELIMITERS = ",;\t|"
+
+
+def _check_file(path: Path) -> None:
+    if not path.exists():
+        raise InputError(f"{path} does not exist; check the path.")
+    if path.is_dir():
+        raise InputError(f"{path} is a folder, not a file; give the file's path.")
+    if path.stat().st_size == 0:
+        raise InputError(f"{path} is empty; give a file with a header row and data rows.")
+
+
+def _decode(path: Path, data: bytes) -> str:
+    if b"\x00" in data[:65536]:
+        raise InputError(f"{path} is not a text table (it holds binary data); give a CSV "
+                         "file, or a Parquet file ending in .parquet.")
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        return data.decode("latin-1")
+
+
+def _sniff_delimiter(path: Path, text: str) -> str:
+    lines = [ln for ln in text.splitlines() if ln.strip()][:50]
+    header = lines[0] if lines else ""
+    try:
+        return csv.Sniffer().sniff("\n".join(lines), delimiters=_DELIMITERS).delimiter
+    except csv.Error:
+        found = [d for d in _DELIMITERS if d in header]
+        if len(found) == 1:
+            return found[0]
+        if not found:
+            return ","
+        raise InputError(f"{path}: cannot tell the delimiter of the header row (it holds "
+                         f"{' and '.join(repr(d) for d in found)}); save the file with commas "
+                         "between columns.") from None
+
+
+def read_text_table(path: Path) -> pd.DataFrame:
+    """Read a delimited text table as strings.
+
+    Parameters
+    ----------
+    path
+        CSV (or semicolon, tab or bar delimited) file.
+
+    Returns
+    -------
+    pandas.DataFrame
+        All values as stripped strings, blanks as ``""``; headers stripped.
+    """
+    _check_file(path)
+    text = _decode(path, path.read_bytes())
+    if not text.strip():
+        raise InputError(f"{path} is empty; give a file with a header row and data rows.")
+    sep = _sniff_delimiter(path, text)
+    try:
+        df = pd.read_csv(io.StringIO(text), sep=sep, dtype=str, keep_default_na=False,
+                         skip_blank_lines=True, skipinitialspace=True)
+    except (pd.errors.ParserError, ValueError) as exc:
+        raise InputError(f"{path} cannot be parsed as a table ({str(exc).strip()}); check "
+                         "that every row has as many fields as the header.") from None
+    df.columns = [str(c).strip() for c in df.columns]
+    if df.empty:
+        raise InputError(f"{path} has a header but no data rows.")
+    return df.apply(lambda s: s.str.strip())
+
+
+def _read_parquet(path: Path) -> pd.DataFrame:
+    try:
+        df = pd.read_parquet(path)
+    except Exception as exc:  # pyarrow raises many error types for damaged files
+        raise InputError(f"{path} cannot be read as Parquet ({type(exc).__name__}); check "
+                         "that the file is complete.") from None
+    if df.empty:
+        raise InputError(f"{path} has columns but no data rows.")
+    out = pd.DataFrame(index=df.index)
+    for col in df.columns:
+        s = df[col]
+        text = s.astype(str).where(s.notna(), "")
+        out[str(col).strip()] = text.str.strip()
+    return out.reset_index(drop=True)
+
+
+def map_columns(df: pd.DataFrame, mapping: Mapping[str, str], table: Table, path: Path,
+                option: str) -> pd.DataFrame:
+    """Rename the user's headers to ours and check the required columns.
+
+    Parameters
+    ----------
+    df
+        The table as read.
+    mapping
+        ``{ours: theirs}`` from ``--columns``-style options or a config table.
+    table
+        The schema table the file must follow.
+    path
+        The file, for messages.
+    option
+        The option that maps this table's headers, for messages.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Only the schema's columns that are present, named as ours.
+    """
+    known = set(table.names)
+    for ours, theirs in mapping.items():
+        if ours not in known:
+            raise InputError(f"{option} maps {ours!r}, which is not a column of the "
+                             f"{table.name} table; known columns: {', '.join(table.names)}.")
+        if theirs not in df.columns:
+            raise InputError(f"{path} has no column {theirs!r} (mapped to {ours!r} by "
+                             f"{option}); columns present: {', '.join(map(str, df.columns))}.")
+    rename = {theirs: ours for ours, theirs in mapping.items()}
+    lower = {str(c).lower(): c for c in df.columns}
+    for name in table.names:
+        if name not in mapping and name not in df.columns and name in lower:
+            rename[lower[name]] = name  # case-insensitive match of our own names
+    df = df.rename(columns=rename)
+    missing = [c for c in table.required if c not in df.columns]
+    if missing:
+        raise InputError(f"{path} has no column {missing[0]!r}; map yours with {option} "
+                         f"{missing[0]}=YOUR_HEADER (columns present: "
+                         f"{', '.join(map(str, df.columns))}).")
+    return df[[c for c in table.names if c in df.columns]].copy()
+
+
+def read_table(path: Path, table: Table, mapping: Mapping[str, str] | None = None,
+               option: str = "--columns") -> pd.DataFrame:
+    """Read a CSV or Parquet table, map headers and check required columns.
+
+    Parameters
+    ----------
+    path
+        The file (``.parquet``/``.pq`` read as Parquet, anything else as text).
+    table
+        Schema table to validate against.
+    mapping
+        Header mapping ``{ours: theirs}``.
+    option
+        Option name to suggest in messages.
+
+    Returns
+    -------
+    pandas.DataFrame
+        String values, our column names, and ``row`` (1 = first data row).
+    """
+    _check_file(path)
+    if path.suffix.lower() in (".parquet", ".pq"):
+        df = _read_parquet(path)
+    else:
+        df = read_text_table(path)
+    df = map_columns(df, mapping or {}, table, path, option)
+    df.insert(0, "row", np.arange(1, len(df) + 1))
+    return df.reset_index(drop=True)
+
+
+def read_casts(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataFrame:
+    """Read a casts file (see :data:`coldindex.schema.CASTS`)."""
+    return read_table(path, CASTS, mapping, "--columns")
+
+
+def read_ice(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataFrame:
+    """Read a monthly ice file (see :data:`coldindex.schema.ICE`)."""
+    return read_table(path, ICE, mapping, "--ice-columns")
+
+
+def read_trajectories(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataFrame:
+    """Read a trajectories file (see :data:`coldindex.schema.TRAJECTORIES`)."""
+    return read_table(path, TRAJECTORIES, mapping, "--trajectory-columns")
+
+
+def read_domain(path: Path) -> Domain:
+    """Read a domain polygon from GeoJSON (one Polygon or MultiPolygon, lon/lat)."""
+    _check_file(path)
+    try:
+        obj = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path} is not valid GeoJSON ({exc}).") from None
+    if not isinstance(obj, dict):
+        raise InputError(f"{path} is not a GeoJSON object.")
+    try:
+        return domain_from_geojson(obj)
+    except InputError as exc:
+        raise InputError(f"{path}: {exc}") from None
+
+
+def read_bathymetry(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Read a bathymetry grid on 1-D lon/lat axes.
+
+    Returns
+    -------
+    tuple
+        ``(lon_axis, lat_axis, depth)`` with depth positive down, shape (lat, lon). [m]
+    """
+    _check_file(path)
+    try:
+        ds = xr.open_dataset(path)
+    except Exception as exc:  # netCDF backends raise many error types
+        raise InputError(f"{path} cannot be read as NetCDF ({type(exc).__name__}); check "
+                         "that the file is complete.") from None
+    with ds:
+        names = [v for v in ds.data_vars if ds[v].ndim == 2]
+        pick = [v for v in names if v in ("depth", "depth_m", "elevation", "z", "bathymetry")]
+        if not pick:
+            raise InputError(f"{path} has no 2-D depth variable (looked for depth, elevation, "
+                             f"z, bathymetry; variables present: {', '.join(map(str, ds.data_vars))}).")
+        da = ds[pick[0]]
+        lon_name = next((d for d in da.dims if str(d).lower().startswith("lon")), None)
+        lat_name = next((d for d in da.dims if str(d).lower().startswith("lat")), None)
+        if lon_name is None or lat_name is None:
+            raise InputError(f"{path}: variable {pick[0]!r} needs lon and lat dimensions, "
+                             f"has {', '.join(map(str, da.dims))}.")
+        da = da.transpose(lat_name, lon_name)
+        values = np.asarray(da.values, dtype=float)
+        if pick[0] in ("elevation", "z") or str(da.attrs.get("positive", "down")) == "up":
+            values = -values
+        return (np.asarray(ds[lon_name].values, float), np.asarray(ds[lat_name].values, float),
+                values)

@@ -1,0 +1,306 @@
+"""Every input and output column: its name, unit and meaning.
+
+Readers validate against these tables, writers order their columns by them,
+and ``docs/outputs.md`` is generated from them (``python -m coldindex.schema``);
+a test fails when the two drift apart.
+
+Column names are lower snake case and valid identifiers in Python and R. The
+unit comes last (``_c``, ``_km2``), followed only by statistical suffixes
+(``_map``, ``_sd``, ``_lo90``, ``_hi90``, ``_z``) and then a lag (``_lag1``).
+"""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Column:
+    """One column of a table.
+
+    Parameters
+    ----------
+    name
+        Column name as written in files.
+    unit
+        Unit (``degC``, ``km2``, ``1`` for dimensionless, ``-`` for text).
+    meaning
+        One sentence a reader of the file can rely on.
+    kind
+        ``int``, ``float``, ``str`` or ``bool``.
+    required
+        Whether an input file must carry it (inputs only).
+    """
+
+    name: str
+    unit: str
+    meaning: str
+    kind: str = "float"
+    required: bool = False
+
+
+@dataclass(frozen=True)
+class Table:
+    """A named file layout: its columns in order and a short description."""
+
+    name: str
+    description: str
+    columns: tuple[Column, ...]
+
+    @property
+    def names(self) -> list[str]:
+        """Column names in order."""
+        return [c.name for c in self.columns]
+
+    @property
+    def required(self) -> list[str]:
+        """Names of the columns an input file must carry."""
+        return [c.name for c in self.columns if c.required]
+
+    def get(self, name: str) -> Column:
+        """Return the column called ``name``."""
+        for c in self.columns:
+            if c.name == name:
+                return c
+        raise KeyError(name)
+
+
+CASTS = Table(
+    "casts",
+    "Input: one bottom-temperature cast a row (CSV or Parquet). Map your own headers with "
+    "`--columns ours=theirs,...`.",
+    (
+        Column("year", "-", "Survey year the cast belongs to.", "int", True),
+        Column("lat", "degrees_north", "Latitude of the cast, -90..90.", "float", True),
+        Column("lon", "degrees_east", "Longitude of the cast, -180..180 or 0..360.", "float", True),
+        Column("bottom_c", "degC", "In-situ temperature near the sea floor (ITS-90).", "float",
+               True),
+        Column("station", "-", "Station name; without it a position rounded to 1 km stands "
+               "for the station.", "str"),
+        Column("date", "-", "Date of the cast, ISO 8601 (YYYY-MM-DD).", "str"),
+        Column("depth_m", "m", "Bottom depth at the cast, positive down.", "float"),
+        Column("salinity", "1", "Practical salinity (PSS-78) near the bottom.", "float"),
+        Column("surface_c", "degC", "Sea-surface temperature at the cast.", "float"),
+    ),
+)
+
+ICE = Table(
+    "ice",
+    "Input: a monthly winter sea-ice series. A winter is labelled by the summer that follows "
+    "it: with a winter starting in November, November and December of year Y belong to "
+    "winter Y+1.",
+    (
+        Column("year", "-", "Calendar year of the month.", "int", True),
+        Column("month", "-", "Calendar month, 1..12.", "int", True),
+        Column("ice", "as stated", "Ice mass (or extent) in the month; unit carried as "
+               "metadata.", "float", True),
+    ),
+)
+
+TRAJECTORIES = Table(
+    "trajectories",
+    "Input: annual climate-model trajectories of the same quantity as the observed column "
+    "being projected, in the unit stated with `--units`.",
+    (
+        Column("model", "-", "Climate-model name.", "str", True),
+        Column("scenario", "-", "Emission scenario name.", "str", True),
+        Column("year", "-", "Year.", "int", True),
+        Column("value", "as stated", "Annual value of the projected quantity.", "float", True),
+        Column("member", "-", "Ensemble member of the model run.", "str"),
+    ),
+)
+
+QC = Table(
+    "qc.csv",
+    "Output: every input row of the casts file with its quality-control flag. Flagged casts "
+    "are excluded from the indices, never silently dropped.",
+    (
+        Column("row", "-", "Row number in the input file (1 = first data row).", "int"),
+        Column("year", "-", "Survey year as read (blank when unreadable).", "int"),
+        Column("station", "-", "Station name, or the rounded position standing for it.", "str"),
+        Column("lat", "degrees_north", "Latitude as read.", "float"),
+        Column("lon", "degrees_east", "Longitude as read, in -180..180.", "float"),
+        Column("bottom_c", "degC", "Bottom temperature as read.", "float"),
+        Column("flag", "-", "`ok` or the reason the cast is excluded (see the flag list).", "str"),
+        Column("detail", "-", "What exactly was wrong, with the offending value.", "str"),
+    ),
+)
+
+QC_FLAGS: dict[str, str] = {
+    "ok": "used",
+    "missing": "a required value (year, lat, lon, bottom_c) is blank",
+    "non_numeric": "a numeric value cannot be read as a number",
+    "sentinel": "a value is a missing-data code such as -9999",
+    "lat_out_of_range": "latitude outside -90..90",
+    "lon_out_of_range": "longitude outside -180..360",
+    "below_freezing": "bottom temperature below the TEOS-10 freezing point by more than the "
+    "sensor tolerance",
+    "above_max": "bottom temperature above the plausible maximum",
+    "duplicate_copy": "an identical copy of another cast (same year and station or position); "
+    "one copy is kept",
+    "duplicate_conflict": "same year and station or position as another cast but different "
+    "values; all copies excluded",
+    "outside_domain": "position outside the survey domain",
+}
+
+_STAT_SUFFIXES = {
+    "_sd": "standard deviation over the conditional simulations",
+    "_lo90": "5th percentile over the conditional simulations",
+    "_hi90": "95th percentile over the conditional simulations",
+}
+
+
+def threshold_label(threshold: float) -> str:
+    """Return a threshold in its shortest column form.
+
+    ``2 -> '2'``, ``-1 -> 'm1'``, ``1.5 -> '1p5'``, ``0 -> '0'`` (never ``2p0``).
+
+    Parameters
+    ----------
+    threshold
+        Temperature threshold. [°C]
+
+    Returns
+    -------
+    str
+        The label used inside column names such as ``below_<label>c_km2``.
+    """
+    if not np.isfinite(threshold):
+        raise ValueError(f"threshold needs to be finite, got: {threshold}")
+    text = np.format_float_positional(float(threshold), trim="-")
+    if text in ("-0", "0"):
+        text = "0"
+    return text.replace("-", "m").replace(".", "p")
+
+
+def area_column(threshold: float) -> str:
+    """Name of the expected-area column for ``threshold`` (e.g. ``below_2c_km2``)."""
+    return f"below_{threshold_label(threshold)}c_km2"
+
+
+def indices_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
+    """Layout of ``indices.csv`` for the given thresholds.
+
+    Parameters
+    ----------
+    thresholds
+        Temperature thresholds. [°C]
+    with_sims
+        Whether the simulation summaries (``_sd``, ``_lo90``, ``_hi90``) are present.
+
+    Returns
+    -------
+    Table
+        The ordered column layout.
+    """
+    cols: list[Column] = [
+        Column("year", "-", "Survey year.", "int"),
+        Column("n_casts", "1", "Casts used after quality control.", "int"),
+        Column("median_doy", "day of year", "Median day of year of the casts used (blank "
+               "without dates).", "float"),
+        Column("coverage", "1", "Share of the domain area within 1.5 station spacings of a "
+               "used cast; station spacing is the median nearest-neighbour distance between "
+               "the year's casts.", "float"),
+        Column("bottom_mean_c", "degC", "Area-weighted mean of the kriged bottom temperature "
+               "over the domain.", "float"),
+    ]
+    if with_sims:
+        cols += [
+            Column(f"bottom_mean_c{s}", "degC", f"Area-weighted mean bottom temperature: {m}.")
+            for s, m in _STAT_SUFFIXES.items()
+        ]
+    for t in thresholds:
+        name = area_column(t)
+        tl = np.format_float_positional(float(t), trim="-")
+        cols.append(Column(name, "km2", f"Expected area with bottom temperature below {tl} °C: "
+                           "sum of cell area times the kriging probability of being below.",
+                           "float"))
+        cols.append(Column(f"{name}_map", "km2", f"Area of the kriged map below {tl} °C "
+                           "(biased low in the tails by kriging's smoothing; kept for "
+                           "continuity with map-based practice).", "float"))
+        if with_sims:
+            cols += [
+                Column(f"{name}{s}", "km2", f"Area below {tl} °C: {m}.")
+                for s, m in _STAT_SUFFIXES.items()
+            ]
+    cols += [
+        Column("cv_rmse_c", "degC", "Leave-one-out cross-validation root-mean-square error at "
+               "the casts.", "float"),
+        Column("cv_bias_c", "degC", "Leave-one-out cross-validation mean error (observed minus "
+               "predicted).", "float"),
+        Column("cv_msse", "1", "Leave-one-out mean standardized squared error (near 1 when the "
+               "kriging variance is honest; blank for IDW).", "float"),
+        Column("variogram", "-", "Variogram family and fitted parameters (lengths in km, "
+               "variances in degC2).", "str"),
+        Column("note", "-", "Why a value is blank or how the year was treated.", "str"),
+    ]
+    return Table("indices.csv", "Output: one row a survey year.", tuple(cols))
+
+
+FIELDS_VARIABLES = Table(
+    "fields.nc",
+    "Output: CF-1.8 NetCDF on the equal-area grid, dimensions (year, y, x).",
+    (
+        Column("bottom_temperature", "degC", "Kriged bottom temperature of the smooth process "
+               "(nugget filtered); NaN outside the domain."),
+        Column("bottom_temperature_sd", "degC", "Kriging standard deviation of the smooth "
+               "process."),
+        Column("p_below_<T>c", "1", "Probability that the bottom temperature is below T °C "
+               "(one variable a threshold)."),
+        Column("cell_area", "m2", "Area of the cell inside the domain (edge cells carry their "
+               "fractional area)."),
+        Column("lat", "degrees_north", "Latitude of the cell centre (2-D)."),
+        Column("lon", "degrees_east", "Longitude of the cell centre (2-D), -180..180."),
+        Column("n_casts", "1", "Casts used per year."),
+        Column("cast_year, cast_lat, cast_lon, cast_bottom_c", "-", "The casts used, along "
+               "dimension `cast`."),
+    ),
+)
+
+OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), FIELDS_VARIABLES)
+INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES)
+
+
+def _render_table(table: Table) -> list[str]:
+    lines = [f"## `{table.name}`", "", table.description, "",
+             "| column | unit | meaning |", "|---|---|---|"]
+    for c in table.columns:
+        req = " (required)" if c.required else ""
+        lines.append(f"| `{c.name}`{req} | {c.unit} | {c.meaning} |")
+    lines.append("")
+    return lines
+
+
+def render_outputs_md(tables: Iterable[Table] | None = None) -> str:
+    """Render the Markdown page documenting every input and output table.
+
+    Returns
+    -------
+    str
+        The content of ``docs/outputs.md``.
+    """
+    lines = [
+        "# Inputs and outputs",
+        "",
+        "<!-- Generated by `python -m coldindex.schema > docs/outputs.md`; do not edit. -->",
+        "",
+        "Units: `degC` degrees Celsius (ITS-90), `km2` square kilometres, `1` dimensionless. "
+        "Thresholds appear in column names in their shortest form: minus is written `m` and "
+        "the decimal point `p` (`below_2c_km2`, `below_m1c_km2`, `below_1p5c_km2`). "
+        "The example below uses the default thresholds 2 and 0 °C.",
+        "",
+    ]
+    for t in tables if tables is not None else (*INPUT_TABLES, *OUTPUT_TABLES):
+        lines += _render_table(t)
+    lines += ["## Quality-control flags", "", "| flag | meaning |", "|---|---|"]
+    lines += [f"| `{k}` | {v} |" for k, v in QC_FLAGS.items()]
+    lines.append("")
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.stdout.write(render_outputs_md())
