@@ -43,6 +43,17 @@ def circular_mean_lon(lon: ArrayLike) -> float:
     return float(wrap_lon(np.rad2deg(np.arctan2(np.sin(rad).mean(), np.cos(rad).mean()))))
 
 
+def central_lon(lon: ArrayLike) -> float:
+    """Middle of the longitude range spanned by a set of points, either convention.
+
+    The points are unwrapped around their circular mean, and the centre of their
+    range taken, so vertex density does not pull the centre. [degrees_east]
+    """
+    lon = np.asarray(lon, dtype=float)
+    u = unwrap_lon(lon, circular_mean_lon(lon))
+    return round(float(wrap_lon(0.5 * (u.min() + u.max()))), 6)
+
+
 def albers_for(lon0: float, lat_min: float, lat_max: float) -> pyproj.CRS:
     """Albers equal-area conic for a latitude band, central meridian ``lon0``.
 
@@ -151,7 +162,7 @@ def domain_from_polygon(geom: BaseGeometry, densify_deg: float = 0.05) -> Domain
     if np.any(np.abs(coords[:, 1]) > 90):
         raise InputError("The domain polygon has latitudes outside -90..90; GeoJSON lists "
                          "longitude first, then latitude.")
-    lon0 = round(circular_mean_lon(coords[:, 0]), 6)
+    lon0 = central_lon(coords[:, 0])
     unwrapped = _map_coords(geom, lambda c: np.column_stack([unwrap_lon(c[:, 0], lon0),
                                                              c[:, 1]]))
     unwrapped = shapely.make_valid(shapely.segmentize(unwrapped, densify_deg))
@@ -233,7 +244,7 @@ def derive_domain(lon: ArrayLike, lat: ArrayLike, year: ArrayLike, station: Arra
     if keep.sum() < 3:
         raise InputError("Too few stations are sampled in at least half of the years to derive "
                          "a domain; give a domain polygon with --domain.")
-    lon0 = circular_mean_lon(lon[keep])
+    lon0 = central_lon(lon[keep])
     crs = albers_for(lon0, float(lat[keep].min()), float(lat[keep].max()))
     fwd = pyproj.Transformer.from_crs(crs.geodetic_crs, crs, always_xy=True)
     inv = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)

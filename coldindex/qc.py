@@ -232,7 +232,7 @@ def run_qc(raw: pd.DataFrame, domain: Domain | None = None, *, source: str = "ca
 
     dates = pd.to_datetime(df["date"].where(df["date"].str.len() > 0), errors="coerce",
                            format="mixed")
-    df["doy"] = dates.dt.dayofyear.astype(float)
+    df["doy"] = dates.dt.day_of_year.astype(float)
     df["year"] = df["year"].astype("Int64")
     df["flag"] = flag
     df["detail"] = detail

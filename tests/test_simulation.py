@@ -1,0 +1,90 @@
+"""Conditional simulation: checks whose truth is known by construction (Monte Carlo,
+fixed seeds; bands several Monte Carlo standard errors wide)."""
+
+import numpy as np
+import pytest
+
+from coldindex.indices import area_below
+from coldindex.interpolate import (
+    Kriging,
+    Variogram,
+    circulant_embedding,
+    conditional_simulations,
+    unconditional_fields,
+)
+
+NY, NX, CELL = 30, 40, 5.0
+GX = CELL * (np.arange(NX) + 0.5)
+GY = CELL * (np.arange(NY) + 0.5)
+
+
+def test_unconditional_fields_have_the_model_covariance():
+    vg = Variogram("exponential", 0.6, 25.0, 0.0)
+    emb = circulant_embedding((NY, NX), CELL, vg)
+    assert emb.clipped_share == 0.0
+    f = unconditional_fields(emb, 4000, np.random.default_rng(1))
+    # Variance at every cell = sill; estimator: sample variance over 4000 fields
+    # (standard error about sill * sqrt(2/4000) = 2.2 %).
+    var = f.var(axis=0)
+    assert var.mean() == pytest.approx(0.6, rel=0.02)
+    # Covariance at lag 2 cells along x = C(10 km).
+    lag = (f[:, :, :-2] * f[:, :, 2:]).mean()
+    assert lag == pytest.approx(vg.covariance(10.0), rel=0.04)
+    # Independent real and imaginary parts: fields 0 and 1 uncorrelated.
+    r = np.corrcoef(f[0::2].ravel(), f[1::2].ravel())[0, 1]
+    assert abs(r) < 0.01
+
+
+def test_embedding_clips_and_reports_long_range():
+    vg = Variogram("exponential", 1.0, 500.0, 0.0)
+    emb = circulant_embedding((NY, NX), CELL, vg, pad_cap=2.0)
+    assert 0.0 < emb.clipped_share < 0.05
+
+
+@pytest.fixture(scope="module")
+def sims():
+    rng = np.random.default_rng(5)
+    iy = rng.integers(0, NY, 50)
+    ix = rng.integers(0, NX, 50)
+    pos = np.unique(np.column_stack([iy, ix]), axis=0)
+    xy = np.column_stack([GX[pos[:, 1]], GY[pos[:, 0]]])  # casts on grid nodes
+    z = 1.0 + np.sin(xy[:, 0] / 40.0) + rng.normal(0, 0.1, len(xy))
+    vg = Variogram("exponential", 0.5, 30.0, 0.01)
+    kr = Kriging(xy, z, vg)
+    mask = np.ones((NY, NX), bool)
+    mask[:5, :8] = False  # an irregular domain
+    out, _ = conditional_simulations(kr, GX, GY, mask, 3000, np.random.default_rng(9))
+    xx, yy = np.meshgrid(GX, GY)
+    cells = np.column_stack([xx[mask], yy[mask]])
+    est, var, _ = kr.predict(cells)
+    return kr, out, est, var, cells, pos, mask
+
+
+def test_realizations_reproduce_casts_up_to_nugget(sims):
+    kr, out, _, _, _, pos, mask = sims
+    index = np.full(mask.shape, -1)
+    index[mask] = np.arange(mask.sum())
+    at = index[pos[:, 0], pos[:, 1]]
+    ok = at >= 0
+    dev = out[:, at[ok]] - kr.z[ok]
+    # The smooth process at a cast differs from the reading by at most the nugget's spread.
+    assert np.sqrt(np.mean(dev**2)) < 1.5 * np.sqrt(kr.vg.nugget)
+
+
+def test_simulation_mean_and_variance_match_kriging(sims):
+    _, out, est, var, _, _, _ = sims
+    n = out.shape[0]
+    # Mean: within 5 Monte Carlo standard errors at every cell.
+    assert np.all(np.abs(out.mean(axis=0) - est) < 5 * np.sqrt(var / n) + 1e-9)
+    # Variance: the average ratio within 3 %.
+    assert out.var(axis=0).mean() / var.mean() == pytest.approx(1.0, abs=0.03)
+
+
+def test_simulated_area_approaches_expected_area(sims):
+    _, out, est, var, _, _, mask = sims
+    area = np.full(mask.sum(), CELL * CELL)
+    for t in (0.5, 1.0, 1.8):
+        expected = area_below(est, np.sqrt(var), area, t)
+        simulated = (out < t).astype(float) @ area
+        se = simulated.std() / np.sqrt(len(simulated))
+        assert simulated.mean() == pytest.approx(expected, abs=4 * se + 1.0)
