@@ -23,13 +23,16 @@ The physical story
 from __future__ import annotations
 
 import sys
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import shapely
 import xarray as xr
+from shapely.geometry import Polygon
 
-from coldindex.domain import domain_from_polygon, wrap_lon
+from coldindex.domain import Domain, domain_from_polygon, wrap_lon
 from coldindex.io.writers import atomic_path, write_bytes, write_csv, write_json
 
 SEED = 4242
@@ -68,9 +71,7 @@ variogram = "auto"
 """
 
 
-def _polygon():  # type: ignore[no-untyped-def]
-    from shapely.geometry import Polygon
-
+def _polygon() -> Polygon:
     return Polygon(SHELF)
 
 
@@ -122,7 +123,19 @@ def _ice_series(rng: np.random.Generator) -> tuple[pd.DataFrame, dict[int, float
     return ice.sort_values(["year", "month"]).reset_index(drop=True), winter
 
 
-def make_scenario(seed: int = SEED) -> dict[str, object]:
+@dataclass(frozen=True)
+class Scenario:
+    """The invented inputs, in memory."""
+
+    casts: pd.DataFrame
+    ice: pd.DataFrame
+    trajectories: pd.DataFrame
+    domain: dict
+    bathymetry: xr.Dataset
+    winter_anomaly: dict[int, float]
+
+
+def make_scenario(seed: int = SEED) -> Scenario:
     """Build every invented input in memory.
 
     Parameters
@@ -132,9 +145,9 @@ def make_scenario(seed: int = SEED) -> dict[str, object]:
 
     Returns
     -------
-    dict
-        ``casts``, ``ice``, ``trajectories`` (frames), ``domain`` (GeoJSON dict),
-        ``bathymetry`` (Dataset), ``winter_anomaly`` (dict year -> anomaly).
+    Scenario
+        Casts, ice and trajectory frames, domain GeoJSON, bathymetry Dataset and
+        the winter ice anomaly that drove each summer.
     """
     rng = np.random.default_rng(np.random.SeedSequence([seed]))
     dom = domain_from_polygon(_polygon())
@@ -142,8 +155,6 @@ def make_scenario(seed: int = SEED) -> dict[str, object]:
     inner = dom.polygon_xy.buffer(-8.0)
     gx = np.arange(np.ceil(minx / SPACING_KM), np.floor(maxx / SPACING_KM) + 1) * SPACING_KM
     gy = np.arange(np.ceil(miny / SPACING_KM), np.floor(maxy / SPACING_KM) + 1) * SPACING_KM
-    import shapely
-
     xs, ys, names = [], [], []
     for j, yv in enumerate(gy[::-1]):
         for i, xv in enumerate(gx):
@@ -182,8 +193,8 @@ def make_scenario(seed: int = SEED) -> dict[str, object]:
 
     traj = _trajectories(rng, casts)
     bathy = _bathymetry_dataset(dom)
-    return {"casts": casts, "ice": ice, "trajectories": traj, "domain": _domain_geojson(),
-            "bathymetry": bathy, "winter_anomaly": winter}
+    return Scenario(casts=casts, ice=ice, trajectories=traj, domain=_domain_geojson(),
+                    bathymetry=bathy, winter_anomaly=winter)
 
 
 def _plant_faults(casts: pd.DataFrame) -> pd.DataFrame:
@@ -214,8 +225,8 @@ def _trajectories(rng: np.random.Generator, casts: pd.DataFrame) -> pd.DataFrame
         members = ("r1", "r2") if mi == 0 else ("r1",)
         for scenario, rate in SCENARIOS.items():
             for member in members:
-                r = np.random.default_rng(np.random.SeedSequence([SEED, mi, len(scenario),
-                                                                  len(member) + 7 * (member == "r2")]))
+                key = [SEED, mi, len(scenario), len(member) + 7 * (member == "r2")]
+                r = np.random.default_rng(np.random.SeedSequence(key))
                 noise = np.zeros(len(years))
                 for i in range(1, len(years)):
                     noise[i] = 0.45 * noise[i - 1] + r.normal(0, 0.55)
@@ -227,7 +238,7 @@ def _trajectories(rng: np.random.Generator, casts: pd.DataFrame) -> pd.DataFrame
     return pd.DataFrame(rows, columns=["model", "scenario", "member", "year", "value"])
 
 
-def _bathymetry_dataset(dom) -> xr.Dataset:  # type: ignore[no-untyped-def]
+def _bathymetry_dataset(dom: Domain) -> xr.Dataset:
     lon = np.round(np.arange(168.0, 194.0001, 0.1), 4)  # 0..360 convention, on purpose
     lat = np.round(np.arange(56.5, 64.5001, 0.05), 4)
     LO, LA = np.meshgrid(lon, lat)
@@ -253,15 +264,14 @@ def write_scenario(out: Path, seed: int = SEED) -> list[Path]:
     out.mkdir(parents=True, exist_ok=True)
     sc = make_scenario(seed)
     paths = [
-        write_csv(sc["casts"], out / "casts.csv"),  # type: ignore[arg-type]
-        write_csv(sc["ice"], out / "ice.csv"),  # type: ignore[arg-type]
-        write_csv(sc["trajectories"], out / "trajectories.csv"),  # type: ignore[arg-type]
-        write_json(sc["domain"], out / "domain.geojson"),
+        write_csv(sc.casts, out / "casts.csv"),
+        write_csv(sc.ice, out / "ice.csv"),
+        write_csv(sc.trajectories, out / "trajectories.csv"),
+        write_json(sc.domain, out / "domain.geojson"),
         write_bytes(CONFIG_TEMPLATE.encode(), out / "coldindex.toml"),
     ]
-    bathy: xr.Dataset = sc["bathymetry"]  # type: ignore[assignment]
     with atomic_path(out / "bathymetry.nc") as tmp:
-        bathy.to_netcdf(tmp, engine="scipy", format="NETCDF3_64BIT")
+        sc.bathymetry.to_netcdf(tmp, engine="scipy", format="NETCDF3_64BIT")
     paths.append(out / "bathymetry.nc")
     return paths
 

@@ -75,7 +75,7 @@ def albers_for(lon0: float, lat_min: float, lat_max: float) -> pyproj.CRS:
     )
 
 
-def _map_coords(geom: BaseGeometry, func) -> BaseGeometry:  # type: ignore[no-untyped-def]
+def _map_coords(geom: BaseGeometry, func) -> BaseGeometry:
     return shapely.transform(geom, func)
 
 
@@ -305,7 +305,7 @@ class Grid:
     @property
     def shape(self) -> tuple[int, int]:
         """(ny, nx)."""
-        return self.area_km2.shape  # type: ignore[return-value]
+        return self.area_km2.shape
 
     def active_xy(self) -> FloatArray:
         """Centres of the cells inside the domain, (m, 2) in row-major order. [km]"""

@@ -1,5 +1,7 @@
-"""Variogram fitting, kriging in dual form, leave-one-out cross-validation,
-inverse-distance weighting and Gaussian conditional simulation.
+"""Variogram fitting, kriging, cross-validation, IDW and conditional simulation.
+
+Kriging is in dual form, leave-one-out cross-validation in closed form, and
+Gaussian conditional simulation by circulant embedding.
 
 Everything here works in the equal-area plane, in kilometres.
 
@@ -53,14 +55,14 @@ FAMILIES = ("exponential", "spherical", "matern", "gaussian")
 _CHUNK = 8192  # grid cells per block, bounds memory at about 8192 x n x 8 bytes
 
 
-def correlation(family: str, r: ArrayLike) -> FloatArray:
+def correlation(family: str, r_in: ArrayLike) -> FloatArray:
     """Correlation at scaled distance ``r = h / len_scale`` (GSTools' conventions).
 
     Parameters
     ----------
     family
         ``exponential``, ``spherical``, ``matern`` (nu = 1.5) or ``gaussian``.
-    r
+    r_in
         Distance divided by the length scale. [1]
 
     Returns
@@ -68,7 +70,7 @@ def correlation(family: str, r: ArrayLike) -> FloatArray:
     numpy.ndarray
         Correlation in [0, 1].
     """
-    r = np.abs(np.asarray(r, dtype=float))
+    r: FloatArray = np.abs(np.asarray(r_in, dtype=np.float64))
     if family == "exponential":
         return np.exp(-r)
     if family == "spherical":
@@ -118,7 +120,7 @@ class Variogram:
                 f"nugget={self.nugget:.4g})")
 
 
-def _gstools_model(family: str):  # type: ignore[no-untyped-def]
+def _gstools_model(family: str):
     import gstools as gs
 
     return {"exponential": gs.Exponential, "spherical": gs.Spherical,
@@ -421,8 +423,9 @@ def circulant_embedding(shape: tuple[int, int], cell_km: float, variogram: Vario
     The embedding starts at twice the grid along each axis and grows by a
     quarter until every eigenvalue is at least ``-tol`` times the largest, up to
     ``pad_cap`` times the grid (default 2.5: beyond it the cost grows with the
-    square of the factor while the clipped share, reported, is already small). What is still negative is clipped to zero and its
-    share of the eigenvalue mass reported.
+    square of the factor while the clipped share, reported, is already small).
+    What is still negative is clipped to zero and its share of the eigenvalue
+    mass reported.
 
     Parameters
     ----------

@@ -16,7 +16,7 @@ from pathlib import Path
 
 from coldindex._version import __version__
 from coldindex.config import IndexOptions
-from coldindex.domain import Domain, derive_domain, domain_from_geojson, make_grid
+from coldindex.domain import Domain, derive_domain, make_grid
 from coldindex.errors import InputError
 from coldindex.indices import IndexResult, compute_indices
 from coldindex.io import readers, writers

@@ -7,9 +7,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from shapely.geometry import Polygon
 
 from coldindex.domain import domain_from_polygon
-from shapely.geometry import Polygon
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_inputs"

@@ -227,8 +227,9 @@ def read_bathymetry(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         names = [v for v in ds.data_vars if ds[v].ndim == 2]
         pick = [v for v in names if v in ("depth", "depth_m", "elevation", "z", "bathymetry")]
         if not pick:
+            present = ", ".join(map(str, ds.data_vars))
             raise InputError(f"{path} has no 2-D depth variable (looked for depth, elevation, "
-                             f"z, bathymetry; variables present: {', '.join(map(str, ds.data_vars))}).")
+                             f"z, bathymetry; variables present: {present}).")
         da = ds[pick[0]]
         lon_name = next((d for d in da.dims if str(d).lower().startswith("lon")), None)
         lat_name = next((d for d in da.dims if str(d).lower().startswith("lat")), None)

@@ -62,7 +62,7 @@ def _write_with(target: Path, write: Callable[[Path], Any]) -> Path:
 
 
 def write_csv(df: pd.DataFrame, target: Path, float_format: str = "%.6g") -> Path:
-    """Write a table as UTF-8 CSV with ``\\n`` line ends, atomically."""
+    """Write a table as UTF-8 CSV with newline line ends, atomically."""
     return _write_with(target, lambda p: df.to_csv(p, index=False, float_format=float_format,
                                                    lineterminator="\n"))
 
