@@ -40,6 +40,7 @@ from __future__ import annotations
 import warnings
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import scipy.fft
@@ -70,17 +71,20 @@ def correlation(family: str, r_in: ArrayLike) -> FloatArray:
     numpy.ndarray
         Correlation in [0, 1].
     """
-    r: FloatArray = np.abs(np.asarray(r_in, dtype=np.float64))
+    r: FloatArray = np.array(r_in, dtype=np.float64)  # a fresh array, reused below
+    np.abs(r, out=r)
     if family == "exponential":
-        return np.exp(-r)
+        return np.exp(np.negative(r, out=r), out=r)
     if family == "spherical":
-        s = np.minimum(r, 1.0)
+        s = np.minimum(r, 1.0, out=r)
         return 1.0 - 1.5 * s + 0.5 * s**3
     if family == "gaussian":
-        return np.exp(-np.pi / 4.0 * r**2)
+        r *= r
+        r *= -np.pi / 4.0
+        return np.exp(r, out=r)
     if family == "matern":
-        s = np.sqrt(1.5) * r
-        return (1.0 + s) * np.exp(-s)
+        r *= np.sqrt(1.5)
+        return (1.0 + r) * np.exp(-r)
     raise ValueError(f"family needs to be one of {', '.join(FAMILIES)}, got: {family!r}")
 
 
@@ -107,7 +111,9 @@ class Variogram:
 
     def covariance(self, h: ArrayLike) -> FloatArray:
         """Covariance of the smooth process at distance ``h`` [km]. [°C²]"""
-        return self.sill * correlation(self.family, np.asarray(h, float) / self.len_scale)
+        c = correlation(self.family, np.asarray(h, float) / self.len_scale)
+        c *= self.sill
+        return c
 
     def semivariance(self, h: ArrayLike) -> FloatArray:
         """Semivariance of the data at distance ``h`` [km] (nugget included for h > 0). [°C²]"""
@@ -262,17 +268,27 @@ class Kriging:
             c = c + self.vg.nugget * (d == 0.0)
         return c
 
+    @cached_property
+    def _q(self) -> tuple[FloatArray, FloatArray]:
+        """``Q = K^-1 - K^-1 F G^-1 F^T K^-1`` (n, n) and ``R = K^-1 F G^-1`` (n, p)."""
+        n = len(self.z)
+        Kinv = sla.cho_solve((self.L, True), np.eye(n), check_finite=False)
+        R = np.linalg.solve(self.G, self.KiF.T).T
+        return Kinv - R @ self.KiF.T, R
+
     def predict(self, xy0: ArrayLike, drift0: ArrayLike | None = None, *,
                 filter_nugget: bool = True, return_variance: bool = True,
                 return_weights: bool = False
                 ) -> tuple[FloatArray, FloatArray | None, FloatArray | None]:
         """Kriging estimate, variance and (optionally) weights at target positions.
 
-        Per block of targets: one covariance matrix ``C`` to the casts, one
-        Cholesky solve ``K^-1 C``, then weights ``lambda = K^-1 (c - F mu)``
-        with Lagrange multipliers ``mu = (F^T K^-1 F)^-1 (F^T K^-1 c - f0)``,
-        estimate ``lambda^T z`` and variance ``C(0) - lambda^T c - mu^T f0``
-        (Isaaks & Srivastava 1989, eq. 12.14, generalised to a drift).
+        The estimate uses the dual weights: ``f0^T beta + c^T a``, one matrix
+        product per block of targets. The weights of the Lagrange system are
+        ``lambda = Q c + R f0`` with ``Q`` and ``R`` formed once per year from the
+        Cholesky factor, so the weights of a block cost one matrix product, and
+        the variance ``C(0) - lambda^T c - mu^T f0`` with multipliers
+        ``mu = G^-1 (F^T K^-1 c - f0)`` (Isaaks & Srivastava 1989, eq. 12.14,
+        generalised to a drift) follows from them.
 
         Parameters
         ----------
@@ -301,18 +317,21 @@ class Kriging:
         var = np.empty(m) if return_variance else None
         W = np.empty((m, len(self.z))) if return_weights else None
         c00 = self.vg.sill + (0.0 if filter_nugget else self.vg.nugget)
+        Ginv = np.linalg.inv(self.G)
         for start in range(0, m, _CHUNK):
             sl = slice(start, min(start + _CHUNK, m))
             C = self._cross(xy0[sl], filter_nugget)  # (b, n)
-            KiC = sla.cho_solve((self.L, True), C.T, check_finite=False)  # (n, b)
-            mu = np.linalg.solve(self.G, self.F.T @ KiC - f0[sl].T)  # (p, b)
-            lam = KiC - self.KiF @ mu  # (n, b)
-            est[sl] = self.z @ lam
+            est[sl] = f0[sl] @ self.beta + C @ self.dual
+            if var is None and W is None:
+                continue
+            Q, R = self._q
+            lam = C @ Q + f0[sl] @ R.T  # (b, n), Q symmetric
             if var is not None:
-                v = c00 - np.einsum("ij,ji->i", C, lam) - np.einsum("ij,ji->j", mu, f0[sl])
+                mu = (C @ self.KiF - f0[sl]) @ Ginv.T  # (b, p)
+                v = c00 - np.einsum("ij,ij->i", lam, C) - np.einsum("ij,ij->i", mu, f0[sl])
                 var[sl] = np.maximum(v, 0.0)
             if W is not None:
-                W[sl] = lam.T
+                W[sl] = lam
         return est, var, W
 
     def weights(self, xy0: ArrayLike, drift0: ArrayLike | None = None, *,
@@ -341,10 +360,7 @@ class Kriging:
         Dubrule, O. (1983). Cross validation of kriging in a unique
         neighborhood. Mathematical Geology 15, 687-699, eqs. 10-11.
         """
-        n = len(self.z)
-        Kinv = sla.cho_solve((self.L, True), np.eye(n))
-        Q = Kinv - self.KiF @ np.linalg.solve(self.G, self.KiF.T)
-        qd = np.diag(Q)
+        qd = np.diag(self._q[0])
         return self.dual / qd, 1.0 / qd
 
 
