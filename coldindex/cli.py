@@ -206,6 +206,137 @@ def index(
         out_console.print(f"Wrote {p}")
 
 
+SeriesArg = Annotated[Path, typer.Argument(help="Yearly series (CSV or Parquet), e.g. "
+                                            "indices.csv.")]
+ValueOpt = Annotated[str, typer.Option("--value", help="The value column, e.g. bottom_mean_c.")]
+OutOpt = Annotated[Path, typer.Option("--out", help="Output folder.")]
+
+
+def _cut_values(text: str) -> tuple[float, float]:
+    try:
+        low, high = (float(v) for v in text.split(","))
+    except ValueError:
+        raise typer.BadParameter(f"needs LOW,HIGH, got: {text!r}") from None
+    if low > high:
+        raise typer.BadParameter(f"needs LOW <= HIGH, got: {text!r}")
+    return low, high
+
+
+@app.command()
+@_guard
+def classify(
+    series: SeriesArg,
+    value: ValueOpt,
+    out: OutOpt,
+    cut_values: Annotated[str | None, typer.Option(
+        help="Cut values given outright: LOW,HIGH (in the column's unit).")] = None,
+    cuts: Annotated[Path | None, typer.Option(
+        help="Reuse the cut values of an earlier cuts.json.")] = None,
+    rule: Annotated[str, typer.Option(help="tercile or sd:K (mean ± K SD).")] = "tercile",
+    reference: Annotated[str | None, typer.Option(
+        help="Reference period A-B (default: the whole record).")] = None,
+    colder: Annotated[str | None, typer.Option(
+        help="lower or higher: which values are colder (default from the column name).")
+    ] = None,
+    columns: ColumnsOpt = None,
+) -> None:
+    """Classify each year as cold, average or warm by fixed cut values."""
+    from coldindex import classify as cl
+    from coldindex.io.readers import read_cuts, read_series
+    from coldindex.io.writers import prepare_out_dir, write_csv, write_json
+
+    if colder is not None and colder not in ("lower", "higher"):
+        raise ColdindexError(f"--colder needs to be lower or higher, got: {colder!r}.")
+    prepare_out_dir(out)
+    df = read_series(series, value, parse_column_map(columns))
+    ref = cl.parse_reference(reference)
+    if cuts is not None:
+        c = cl.Cuts.from_dict(read_cuts(cuts), str(cuts))
+        if c.column != value:
+            raise ColdindexError(f"{cuts} holds cut values for {c.column!r}, not {value!r}; "
+                                 "derive new ones or give the matching file.")
+    elif cut_values is not None:
+        low, high = _cut_values(cut_values)
+        c = cl.Cuts(value, low, high, "given", None, colder or cl.colder_direction(value))
+    else:
+        c = cl.cuts_by_rule(df["year"], df["value"], value, rule, ref, colder)
+    table = cl.classify(df["year"], df["value"], c, df["sd"] if "sd" in df else None, ref)
+    t = Table(title=f"{value}: cut values {c.low:.4g} and {c.high:.4g} ({c.rule}, "
+                    f"{c.reference or 'whole record'}; {c.direction} is colder)",
+              title_justify="left")
+    for col in ("year", "value", "class", "z", *(["p_cold"] if "p_cold" in table else [])):
+        t.add_column(col, justify="right")
+    colour = {"cold": "blue", "warm": "red", "average": "default", "": "default"}
+    for _, r in table.tail(12).iterrows():
+        cells = [str(r["year"]), f"{r['value']:.4g}", f"[{colour[r['class']]}]{r['class']}[/]",
+                 f"{r['z']:.2f}"]
+        if "p_cold" in table:
+            cells.append(f"{r['p_cold']:.2f}")
+        t.add_row(*cells)
+    out_console.print(t)
+    counts = table["class"].value_counts()
+    out_console.print(", ".join(f"{counts.get(k, 0)} {k}" for k in ("cold", "average", "warm"))
+                      + f" years of {len(table)}.")
+    for p in (write_csv(table, out / "classes.csv"), write_json(c.to_dict(), out / "cuts.json")):
+        out_console.print(f"Wrote {p}")
+
+
+@app.command()
+@_guard
+def shifts(
+    series: SeriesArg,
+    value: ValueOpt,
+    out: OutOpt,
+    method: Annotated[str, typer.Option(help="stars, pelt or both.")] = "both",
+    cutoff: Annotated[int, typer.Option(help="STARS cut-off length (years).")] = 10,
+    alpha: Annotated[float, typer.Option(help="STARS significance level.")] = 0.1,
+    huber: Annotated[float, typer.Option(help="STARS Huber weight parameter (SD units).")] = 1.0,
+    prewhiten: Annotated[str, typer.Option(help="none, ip4 or mpk.")] = "none",
+    subsample: Annotated[int | None, typer.Option(
+        help="Subsample length for the prewhitening estimate (default (cutoff + 1) / 3, at "
+             "least 5).")] = None,
+    min_size: Annotated[int, typer.Option(help="PELT shortest regime (years).")] = 5,
+    boot: Annotated[int, typer.Option(help="Red-noise bootstrap replicates (0 = off).")] = 999,
+    seed: Annotated[int, typer.Option(help="Random seed of the bootstrap.")] = 20261201,
+    columns: ColumnsOpt = None,
+) -> None:
+    """Detect regime shifts (STARS, PELT) with red-noise bootstrap p-values."""
+    from coldindex.io.readers import read_series
+    from coldindex.io.writers import prepare_out_dir, write_csv
+    from coldindex.regimes import ShiftOptions, detect_shifts
+
+    methods = {"both": ("stars", "pelt"), "stars": ("stars",), "pelt": ("pelt",)}
+    if method not in methods:
+        raise ColdindexError(f"--method needs to be stars, pelt or both, got: {method!r}.")
+    opts = ShiftOptions(cutoff=cutoff, alpha=alpha, huber=huber, prewhiten=prewhiten,
+                        subsample=subsample, min_size=min_size, boot=boot, seed=seed)
+    prepare_out_dir(out)
+    df = read_series(series, value, parse_column_map(columns))
+    with err_console.status("Running the red-noise bootstrap..."):
+        res = detect_shifts(df["year"], df["value"], methods[method], opts)
+    if res.skipped_years:
+        out_console.print(f"Years without a value, closed up before detection: "
+                          f"{', '.join(map(str, res.skipped_years))}.")
+    out_console.print(f"Bootstrap null: AR(1) with bias-corrected lag-1 autocorrelation "
+                      f"{res.phi:.2f}, {boot} replicates.")
+    t = Table(title=f"Regime shifts in {value}", title_justify="left")
+    for col in ("method", "first year", "mean before", "mean after", "p (family-wise)",
+                "survives"):
+        t.add_column(col, justify="right")
+    for _, r in res.shifts.iterrows():
+        ok = bool(r["p_value"] < alpha) if r["p_value"] == r["p_value"] else False
+        t.add_row(r["method"], str(r["year"]), f"{r['mean_before']:.4g}",
+                  f"{r['mean_after']:.4g}",
+                  "-" if r["p_value"] != r["p_value"] else f"{r['p_value']:.3f}",
+                  "[bold]yes[/]" if ok else "no")
+    out_console.print(t)
+    if res.shifts.empty:
+        out_console.print("No shift detected.")
+    for p in (write_csv(res.shifts, out / "shifts.csv"),
+              write_csv(res.regimes, out / "regimes.csv")):
+        out_console.print(f"Wrote {p}")
+
+
 @app.command()
 @_guard
 def demo(

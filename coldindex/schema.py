@@ -261,7 +261,68 @@ FIELDS_VARIABLES = Table(
     ),
 )
 
-OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), FIELDS_VARIABLES)
+CLASSES = Table(
+    "classes.csv",
+    "Output of `coldindex classify`: one row a year.",
+    (
+        Column("year", "-", "Year.", "int"),
+        Column("value", "as input", "The classified value.", "float"),
+        Column("class", "-", "`cold`, `average` or `warm` under the cut values (blank when "
+               "the value is missing); a value equal to a cut value is average.", "str"),
+        Column("anomaly", "as input", "Value minus the reference-period mean.", "float"),
+        Column("z", "1", "Anomaly divided by the reference-period standard deviation "
+               "(ddof = 1).", "float"),
+        Column("p_cold", "1", "Probability of a cold year given the value's `_sd` (Gaussian); "
+               "only when the series carries `<value>_sd`.", "float"),
+        Column("p_average", "1", "Probability of an average year (as above).", "float"),
+        Column("p_warm", "1", "Probability of a warm year (as above).", "float"),
+    ),
+)
+
+CUTS = Table(
+    "cuts.json",
+    "Output of `coldindex classify`: the cut values for one column, read back with "
+    "`--cuts FILE` (refused for another column).",
+    (
+        Column("column", "-", "Column the cut values were made for.", "str"),
+        Column("low", "as column", "Lower cut value.", "float"),
+        Column("high", "as column", "Upper cut value.", "float"),
+        Column("rule", "-", "`tercile`, `sd:K` or `given`.", "str"),
+        Column("reference", "-", "Reference period `A-B`, or null for the whole record.",
+               "str"),
+        Column("direction", "-", "`lower` when lower values are colder, `higher` when higher "
+               "values are (cold-water areas).", "str"),
+    ),
+)
+
+SHIFTS = Table(
+    "shifts.csv",
+    "Output of `coldindex shifts`: one row a detected shift.",
+    (
+        Column("method", "-", "`stars` or `pelt`.", "str"),
+        Column("year", "-", "First year of the new regime.", "int"),
+        Column("mean_before", "as input", "Mean of the regime before the shift.", "float"),
+        Column("mean_after", "as input", "Mean of the regime after the shift.", "float"),
+        Column("p_value", "1", "Family-wise p-value from the red-noise bootstrap of the whole "
+               "detection (blank with `--boot 0`).", "float"),
+        Column("rsi", "1", "STARS regime shift index (blank for PELT).", "float"),
+    ),
+)
+
+REGIMES = Table(
+    "regimes.csv",
+    "Output of `coldindex shifts`: one row a regime between shifts.",
+    (
+        Column("method", "-", "`stars` or `pelt`.", "str"),
+        Column("start", "-", "First year of the regime.", "int"),
+        Column("end", "-", "Last year of the regime.", "int"),
+        Column("mean", "as input", "Mean of the regime.", "float"),
+        Column("n", "1", "Number of values in the regime.", "int"),
+    ),
+)
+
+OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), FIELDS_VARIABLES, CLASSES,
+                                    CUTS, SHIFTS, REGIMES)
 INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES)
 
 

@@ -242,3 +242,72 @@ def read_bathymetry(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
             values = -values
         return (np.asarray(ds[lon_name].values, float), np.asarray(ds[lat_name].values, float),
                 values)
+
+
+def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None,
+                option: str = "--columns") -> pd.DataFrame:
+    """Read a yearly series: ``year`` and the value column (and its ``_sd`` when present).
+
+    Parameters
+    ----------
+    path
+        CSV or Parquet file with one row a year (e.g. ``indices.csv``).
+    value
+        The value column (after mapping).
+    mapping
+        Header mapping ``{ours: theirs}``; ``year`` and ``value`` names may be mapped.
+    option
+        Option name used in messages.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``year`` (int), ``value`` (float, NaN for blanks) and ``sd`` when the file
+        has ``<value>_sd``; sorted by year.
+    """
+    _check_file(path)
+    df = _read_parquet(path) if path.suffix.lower() in (".parquet", ".pq") else \
+        read_text_table(path)
+    rename = {theirs: ours for ours, theirs in (mapping or {}).items()}
+    for theirs in rename:
+        if theirs not in df.columns:
+            raise InputError(f"{path} has no column {theirs!r} (mapped by {option}); columns "
+                             f"present: {', '.join(map(str, df.columns))}.")
+    df = df.rename(columns=rename)
+    for col in ("year", value):
+        if col not in df.columns:
+            raise InputError(f"{path} has no column {col!r}; pick one with --value or map it "
+                             f"with {option} {col}=YOUR_HEADER (columns present: "
+                             f"{', '.join(map(str, df.columns))}).")
+    years = pd.to_numeric(df["year"], errors="coerce")
+    if years.isna().any() or (years != years.round()).any():
+        bad = int(np.flatnonzero(years.isna() | (years != years.round()))[0]) + 1
+        raise InputError(f"{path}, data row {bad}: column 'year' needs a whole year, got: "
+                         f"{df['year'].iloc[bad - 1]!r}.")
+    vals = pd.to_numeric(df[value].replace("", np.nan), errors="coerce")
+    bad_mask = vals.isna() & df[value].astype(str).str.strip().ne("")
+    if bad_mask.any():
+        bad = int(np.flatnonzero(bad_mask)[0]) + 1
+        raise InputError(f"{path}, data row {bad}: column {value!r} needs a number, got: "
+                         f"{df[value].iloc[bad - 1]!r}.")
+    out = pd.DataFrame({"year": years.astype(int), "value": vals.astype(float)})
+    dup = out["year"][out["year"].duplicated()]
+    if len(dup):
+        raise InputError(f"{path}: year {int(dup.iloc[0])} appears more than once; keep one row "
+                         "a year.")
+    if f"{value}_sd" in df.columns:
+        out["sd"] = pd.to_numeric(df[f"{value}_sd"].replace("", np.nan), errors="coerce")
+    return out.sort_values("year").reset_index(drop=True)
+
+
+def read_cuts(path: Path) -> dict:
+    """Read a ``cuts.json`` file as a dictionary."""
+    _check_file(path)
+    try:
+        obj = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path} is not valid JSON ({exc}); write it with coldindex "
+                         "classify.") from None
+    if not isinstance(obj, dict):
+        raise InputError(f"{path} is not a cuts object; write it with coldindex classify.")
+    return obj
