@@ -184,7 +184,9 @@ def classify(years: ArrayLike, values: ArrayLike, cuts: Cuts, sd: ArrayLike | No
         with np.errstate(divide="ignore", invalid="ignore"):
             p_low = np.where(e > 0, ndtr((cuts.low - v) / e), (v < cuts.low).astype(float))
             p_high = np.where(e > 0, ndtr((v - cuts.high) / e), (v > cuts.high).astype(float))
-        p_mid = 1.0 - p_low - p_high
+        # Probabilities are rounded to 1e-6: smaller ones are not meaningful.
+        p_low, p_high = np.round(p_low, 6), np.round(p_high, 6)
+        p_mid = np.round(1.0 - p_low - p_high, 6)
         out["p_cold"] = p_low if colder_low else p_high
         out["p_average"] = p_mid
         out["p_warm"] = p_high if colder_low else p_low

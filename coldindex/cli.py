@@ -344,7 +344,11 @@ def demo(
         "coldindex-demo"),
     sims: Annotated[int, typer.Option(help="Conditional simulations a year.")] = 200,
 ) -> None:
-    """Write the invented sample inputs to DIR/inputs and compute the release in DIR/release."""
+    """Write the invented sample inputs to DIR/inputs and compute the release in DIR/release.
+
+    The release holds the indices (index), the year classes of the mean bottom
+    temperature (classify) and its regime shifts (shifts).
+    """
     from coldindex.demo import write_scenario
     from coldindex.io.writers import prepare_out_dir
 
@@ -352,8 +356,12 @@ def demo(
     inputs = folder / "inputs"
     write_scenario(inputs)
     out_console.print(f"Wrote the invented inputs to {inputs}")
-    index(inputs / "casts.csv", out=folder / "release", domain=inputs / "domain.geojson",
+    release = folder / "release"
+    index(inputs / "casts.csv", out=release, domain=inputs / "domain.geojson",
           bathymetry=inputs / "bathymetry.nc", sims=sims)
+    classify(release / "indices.csv", value="bottom_mean_c", out=release)
+    shifts(release / "indices.csv", value="bottom_mean_c", out=release)
+    out_console.print(f"The release is in {release}.")
 
 
 def main() -> None:
