@@ -298,6 +298,8 @@ def shifts(
     min_size: Annotated[int, typer.Option(help="PELT shortest regime (years).")] = 5,
     boot: Annotated[int, typer.Option(help="Red-noise bootstrap replicates (0 = off).")] = 999,
     seed: Annotated[int, typer.Option(help="Random seed of the bootstrap.")] = 20261201,
+    null_window: Annotated[int, typer.Option(
+        help="Window (years) of the shift-robust lag-1 estimate of the bootstrap null.")] = 15,
     columns: ColumnsOpt = None,
 ) -> None:
     """Detect regime shifts (STARS, PELT) with red-noise bootstrap p-values."""
@@ -309,7 +311,8 @@ def shifts(
     if method not in methods:
         raise ColdindexError(f"--method needs to be stars, pelt or both, got: {method!r}.")
     opts = ShiftOptions(cutoff=cutoff, alpha=alpha, huber=huber, prewhiten=prewhiten,
-                        subsample=subsample, min_size=min_size, boot=boot, seed=seed)
+                        subsample=subsample, min_size=min_size, boot=boot, seed=seed,
+                        null_window=null_window)
     prepare_out_dir(out)
     df = read_series(series, value, parse_column_map(columns))
     with err_console.status("Running the red-noise bootstrap..."):
@@ -317,8 +320,9 @@ def shifts(
     if res.skipped_years:
         out_console.print(f"Years without a value, closed up before detection: "
                           f"{', '.join(map(str, res.skipped_years))}.")
-    out_console.print(f"Bootstrap null: AR(1) with bias-corrected lag-1 autocorrelation "
-                      f"{res.phi:.2f}, {boot} replicates.")
+    out_console.print(f"Bootstrap null: AR(1) with lag-1 autocorrelation {res.phi:.2f} "
+                      f"(median over {null_window}-year windows, bias-corrected), {boot} "
+                      "replicates.")
     t = Table(title=f"Regime shifts in {value}", title_justify="left")
     for col in ("method", "first year", "mean before", "mean after", "p (family-wise)",
                 "survives"):

@@ -38,3 +38,21 @@ def test_effective_sample_size():
     # hand-worked n = 40, r = 0.5 -> 40 * 0.5 / 1.5 = 13.33.
     assert effective_sample_size(40, 0.5) == pytest.approx(40 / 3)
     assert effective_sample_size(40, -0.5) == 40  # never more than n
+
+
+def test_subsample_lag1_is_robust_to_a_step():
+    from coldindex.stats import lag1_subsample_median, robust_sd
+
+    x = simulate_ar1(0.5, 50, 400, np.random.default_rng(8))
+    stepped = x.copy()
+    stepped[:, 25:] += 3.0
+    whole = np.mean([lag1_bias_corrected(s) for s in stepped])
+    sub = np.mean([lag1_subsample_median(s) for s in stepped])
+    clean = np.mean([lag1_subsample_median(s) for s in x])
+    assert whole > 0.75  # the step inflates the whole-series estimate
+    assert abs(sub - clean) < 0.15 and whole - clean > 2 * abs(sub - clean)
+    # robust_sd of white noise estimates its SD; a step barely moves it.
+    w = np.random.default_rng(1).normal(0, 2.0, 5000)
+    assert robust_sd(w) == pytest.approx(2.0, rel=0.05)
+    w[2500:] += 10
+    assert robust_sd(w) == pytest.approx(2.0, rel=0.05)
