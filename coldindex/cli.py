@@ -341,6 +341,193 @@ def shifts(
         out_console.print(f"Wrote {p}")
 
 
+def _lags(text: str) -> list[int]:
+    try:
+        if "-" in text:
+            a, b = (int(v) for v in text.split("-"))
+            return list(range(a, b + 1))
+        return [int(v) for v in text.split(",")]
+    except ValueError:
+        raise ColdindexError(f"--lags needs a span like 0-2 or a list like 0,1, got: "
+                             f"{text!r}.") from None
+
+
+@app.command()
+@_guard
+def skill(
+    ice: Annotated[Path, typer.Option("--ice", help="Monthly ice file (year, month, ice).")],
+    target: Annotated[Path, typer.Option("--target", help="Yearly target series, e.g. "
+                                         "indices.csv.")],
+    value: ValueOpt,
+    out: OutOpt,
+    months: Annotated[str, typer.Option(help="Winter months, e.g. 11-4 (wraps over the new "
+                                        "year).")] = "11-4",
+    winter: Annotated[str, typer.Option(help="Winter aggregate: mean or max.")] = "mean",
+    lags: Annotated[str, typer.Option(help="Lags in years, e.g. 0-2 (0 = the summer after "
+                                      "the winter).")] = "0-2",
+    confidence: Annotated[float, typer.Option(help="Confidence of intervals.")] = 0.9,
+    reference: Annotated[str | None, typer.Option(
+        help="Reference period A-B for anomalies and cut values.")] = None,
+    cuts: Annotated[Path | None, typer.Option(
+        help="cuts.json for the outlook's classes (default: terciles).")] = None,
+    leave_out: Annotated[int, typer.Option(
+        help="Years left out around each hindcast year (odd; 1 = leave-one-out).")] = 3,
+    ice_columns: Annotated[str | None, typer.Option(
+        "--ice-columns", help="Map ice headers: ours=theirs,...")] = None,
+    target_columns: Annotated[str | None, typer.Option(
+        "--target-columns", help="Map target headers: ours=theirs,...")] = None,
+) -> None:
+    """Lagged skill of winter ice for the target, the persistence baseline, hindcast, outlook."""
+    from coldindex import classify as cl
+    from coldindex import skill as sk
+    from coldindex.io.readers import read_cuts, read_ice, read_series
+    from coldindex.io.writers import prepare_out_dir, write_csv, write_figure, write_json
+    from coldindex.report.figures import hindcast_figure, skill_figure
+
+    if not 0 < confidence < 1:
+        raise ColdindexError(f"--confidence needs to be in (0, 1), got: {confidence}.")
+    prepare_out_dir(out)
+    ice_df = sk.ice_frame(read_ice(ice, parse_column_map(ice_columns, "--ice-columns")),
+                          str(ice))
+    series = read_series(target, value, parse_column_map(target_columns, "--target-columns"),
+                         "--target-columns")
+    tgt = pd.Series(series["value"].to_numpy(), index=series["year"].to_numpy()).dropna()
+    ref = cl.parse_reference(reference)
+    preds = sk.winter_predictors(ice_df, sk.parse_months(months), winter)
+    lag_list = _lags(lags)
+    table = sk.skill_table(preds, tgt, lag_list, confidence, ref)
+    hc = sk.hindcast(preds, tgt, lag_list[0], leave_out)
+    if cuts is not None:
+        c = cl.Cuts.from_dict(read_cuts(cuts), str(cuts))
+        if c.column != value:
+            raise ColdindexError(f"{cuts} holds cut values for {c.column!r}, not {value!r}; "
+                                 "give the matching file.")
+    else:
+        c = cl.cuts_by_rule(tgt.index, tgt.to_numpy(), value, "tercile", ref)
+    ol = sk.outlook(preds, tgt, hc, c, confidence)
+
+    best = table.sort_values(["q_value", "p_value"]).iloc[0]
+    sig = table[table["q_value"] < 0.1]
+    if len(sig):
+        out_console.print(
+            f"Skill: {len(sig)} of {len(table)} month x lag combinations are significant "
+            f"(q < 0.1); the strongest is {best['predictor']} at lag {best['lag']} "
+            f"(r = {best['r']:.2f}, {confidence:.0%} interval {best['r_lo']:.2f} to "
+            f"{best['r_hi']:.2f}, n = {best['n']}, effective n = {best['n_eff']:.1f}, "
+            f"q = {best['q_value']:.3f}).")
+        beats = best["p_beats_persistence"]
+        verdict = ("beats" if beats < 1 - confidence else "does not beat")
+        out_console.print(f"Against persistence (r = {best['r_persistence']:.2f}), it "
+                          f"{verdict} it (Williams' t, one-sided p = {beats:.3f}).")
+    else:
+        out_console.print(f"Skill: no month x lag combination is significant (smallest q = "
+                          f"{best['q_value']:.2f}); the ice carries no demonstrable skill.")
+    out_console.print(f"Hindcast (lag {hc.lag}, leave-{hc.leave_out}-out): anomaly correlation "
+                      f"{hc.anomaly_correlation:.2f}, RMSE {hc.rmse:.3g}, skill score "
+                      f"{hc.msss_climatology:.2f} against climatology and "
+                      f"{hc.msss_persistence:.2f} against persistence.")
+    out_console.print("Outlook: " + sk.outlook_sentence(ol, value))
+    written = [
+        write_csv(table, out / "skill.csv"),
+        write_csv(hc.table[["year", "observed", "predicted", "persistence"]],
+                  out / "hindcast.csv"),
+        write_json(ol, out / "outlook.json"),
+        write_figure(skill_figure(table), out / "skill.png"),
+        write_figure(hindcast_figure(hc.table, ol, value), out / "hindcast.png"),
+    ]
+    for p in written:
+        out_console.print(f"Wrote {p}")
+
+
+@app.command()
+@_guard
+def project(
+    trajectories: Annotated[list[Path], typer.Argument(
+        help="Trajectory CSV files (model, scenario, year, value[, member]) or gridded "
+             "NetCDF files (with --fields).")],
+    observed: Annotated[Path, typer.Option("--observed", help="Observed yearly series, e.g. "
+                                           "indices.csv.")],
+    value: ValueOpt,
+    out: OutOpt,
+    cuts: Annotated[Path | None, typer.Option(
+        help="cuts.json of the observed column (default: terciles of the observed record).")
+    ] = None,
+    adjust: Annotated[str, typer.Option(help="none, delta, qmap or qdm.")] = "qdm",
+    calibration: Annotated[str | None, typer.Option(
+        help="Calibration period A-B (default: the overlap of model and observed years).")
+    ] = None,
+    window: Annotated[int, typer.Option(help="Window (years) for the stop year.")] = 10,
+    p_stop: Annotated[float, typer.Option(
+        help="Cold years have stopped when P(at least one in the window) < this.")] = 0.1,
+    units: Annotated[str | None, typer.Option(
+        help="Unit of the trajectory values (checked against the observed column).")] = None,
+    domain: DomainOpt = None,
+    fields: Annotated[Path | None, typer.Option(
+        help="Observed fields.nc (gridded path: per-cell adjustment, then areas).")] = None,
+    var: Annotated[str | None, typer.Option(help="Variable of the gridded files.")] = None,
+    season: Annotated[str, typer.Option(help="Months averaged on the gridded path.")] = "6-8",
+    scheduler: Annotated[str | None, typer.Option(
+        help="dask.distributed scheduler address (tcp://host:port); default a local one.")
+    ] = None,
+    observed_columns: Annotated[str | None, typer.Option(
+        "--observed-columns", help="Map observed headers: ours=theirs,...")] = None,
+    trajectory_columns: Annotated[str | None, typer.Option(
+        "--trajectory-columns", help="Map trajectory headers: ours=theirs,...")] = None,
+) -> None:
+    """When do cold years stop? Bias-adjusted model trajectories under fixed cut values."""
+    from coldindex import classify as cl
+    from coldindex import project as pj
+    from coldindex.io.readers import read_cuts, read_domain, read_series, read_trajectories
+    from coldindex.io.writers import prepare_out_dir, write_csv, write_figure
+    from coldindex.report.figures import projection_figure
+
+    prepare_out_dir(out)
+    obs = read_series(observed, value, parse_column_map(observed_columns, "--observed-columns"),
+                      "--observed-columns")
+    if cuts is not None:
+        c = cl.Cuts.from_dict(read_cuts(cuts), str(cuts))
+        if c.column != value:
+            raise ColdindexError(f"{cuts} holds cut values for {c.column!r}, not {value!r}; "
+                                 "give the matching file.")
+    else:
+        c = cl.cuts_by_rule(obs["year"], obs["value"], value)
+    opts = pj.ProjectOptions(adjust=adjust, calibration=cl.parse_reference(calibration),
+                             window=window, p_stop=p_stop)
+    bound = None
+    if value.startswith("below_"):
+        dom_path = domain or (observed.parent / "domain.geojson")
+        if not dom_path.is_file():
+            raise ColdindexError(f"Areas are bounded by the domain area; give --domain (no "
+                                 f"{dom_path} beside the observed series).")
+        bound = read_domain(dom_path).area_km2
+    if fields is not None:
+        from coldindex import gridded
+
+        traj = gridded.trajectories_from_netcdf(trajectories, fields, value, var, season,
+                                                adjust, opts.calibration, scheduler)
+        opts = pj.ProjectOptions(adjust="none", calibration=opts.calibration, window=window,
+                                 p_stop=p_stop)
+        out_console.print("Gridded path: temperatures adjusted per grid cell against "
+                          f"{fields}, then {value} recomputed on the survey grid.")
+    else:
+        pj.check_units(value, units)
+        frames = [pj.trajectory_frame(read_trajectories(
+            p, parse_column_map(trajectory_columns, "--trajectory-columns")), str(p))
+            for p in trajectories]
+        traj = pd.concat(frames, ignore_index=True)
+    res = pj.project(traj, obs["year"], obs["value"], c, opts, bound)
+    out_console.print(f"Calibration {res.calibration[0]}-{res.calibration[1]}, adjustment "
+                      f"{adjust}; cut values {c.low:.4g} / {c.high:.4g} ({c.rule}).")
+    for sentence in res.summaries:
+        out_console.print(sentence)
+    written = [write_csv(res.projection, out / "projection.csv"),
+               write_csv(res.emergence, out / "emergence.csv"),
+               write_figure(projection_figure(res.projection, res.emergence),
+                            out / "projection.png")]
+    for p in written:
+        out_console.print(f"Wrote {p}")
+
+
 @app.command()
 @_guard
 def demo(
@@ -351,7 +538,9 @@ def demo(
     """Write the invented sample inputs to DIR/inputs and compute the release in DIR/release.
 
     The release holds the indices (index), the year classes of the mean bottom
-    temperature (classify) and its regime shifts (shifts).
+    temperature (classify), its regime shifts (shifts), the skill of winter ice
+    for it with next summer's outlook (skill), and when cold years stop under the
+    model trajectories (project).
     """
     from coldindex.demo import write_scenario
     from coldindex.io.writers import prepare_out_dir
@@ -365,6 +554,10 @@ def demo(
           bathymetry=inputs / "bathymetry.nc", sims=sims)
     classify(release / "indices.csv", value="bottom_mean_c", out=release)
     shifts(release / "indices.csv", value="bottom_mean_c", out=release)
+    skill(ice=inputs / "ice.csv", target=release / "indices.csv", value="bottom_mean_c",
+          out=release, cuts=release / "cuts.json")
+    project([inputs / "trajectories.csv"], observed=release / "indices.csv",
+            value="bottom_mean_c", out=release, cuts=release / "cuts.json", units="degC")
     out_console.print(f"The release is in {release}.")
 
 

@@ -321,8 +321,61 @@ REGIMES = Table(
     ),
 )
 
+SKILL = Table(
+    "skill.csv",
+    "Output of `coldindex skill`: one row per predictor x lag.",
+    (
+        Column("predictor", "-", "`ice_<mon>` (one winter month) or `ice_winter_mean`/`_max`.",
+               "str"),
+        Column("lag", "years", "Target year minus winter label (0 = the summer after the "
+               "winter).", "int"),
+        Column("n", "1", "Years the predictor and target share.", "int"),
+        Column("n_eff", "1", "Effective sample size, Bretherton et al. (1999) eq. 31, from "
+               "Marriott-Pope-Kendall corrected lag-1 autocorrelations.", "float"),
+        Column("r", "1", "Pearson correlation of the anomalies.", "float"),
+        Column("r_lo", "1", "Lower bound of the Fisher-z interval with n_eff.", "float"),
+        Column("r_hi", "1", "Upper bound of the Fisher-z interval with n_eff.", "float"),
+        Column("confidence", "1", "Confidence of the interval.", "float"),
+        Column("p_value", "1", "Two-sided Fisher-z p-value with n_eff.", "float"),
+        Column("q_value", "1", "Benjamini-Hochberg q-value across the whole table.", "float"),
+        Column("r_persistence", "1", "Correlation of the target with its previous year, on "
+               "the years both forecasts share.", "float"),
+        Column("p_beats_persistence", "1", "One-sided Williams' t p-value that the (sign-"
+               "oriented) ice correlation exceeds persistence's, with n_eff.", "float"),
+    ),
+)
+
+HINDCAST = Table(
+    "hindcast.csv",
+    "Output of `coldindex skill`: the cross-validated hindcast, one row a year.",
+    (
+        Column("year", "-", "Target year.", "int"),
+        Column("observed", "as target", "Observed target value.", "float"),
+        Column("predicted", "as target", "Leave-k-out regression forecast; predictor and "
+               "climatology chosen without the left-out years.", "float"),
+        Column("persistence", "as target", "Previous year's observed value.", "float"),
+    ),
+)
+
+OUTLOOK = Table(
+    "outlook.json",
+    "Output of `coldindex skill`: the outlook for the latest winter's target year.",
+    (
+        Column("year", "-", "Forecast year (latest winter with the predictor + lag).", "int"),
+        Column("winter", "-", "Winter label the forecast uses.", "int"),
+        Column("predictor", "-", "Predictor chosen on all shared years.", "str"),
+        Column("predicted", "as target", "Forecast value.", "float"),
+        Column("lo, hi", "as target", "Prediction interval from the cross-validated RMSE "
+               "(Gaussian).", "float"),
+        Column("p_cold, p_average, p_warm", "1", "Class probabilities under the cut values.",
+               "float"),
+        Column("observed, observed_class", "as target", "Present when that summer is already "
+               "observed.", "float"),
+    ),
+)
+
 OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), FIELDS_VARIABLES, CLASSES,
-                                    CUTS, SHIFTS, REGIMES)
+                                    CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK)
 INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES)
 
 

@@ -80,6 +80,22 @@ def write_netcdf(ds: xr.Dataset, target: Path) -> Path:
     return _write_with(target, lambda p: ds.to_netcdf(p, engine="netcdf4", encoding=encoding))
 
 
+def write_figure(fig: Any, target: Path) -> Path:
+    """Save a matplotlib figure reproducibly (no timestamps; fixed SVG ids), atomically.
+
+    The format follows the suffix (``.png`` or ``.svg``); the figure is closed.
+    """
+    import matplotlib
+    import matplotlib.pyplot as plt
+
+    fmt = target.suffix.lstrip(".").lower()
+    meta = {"Software": None} if fmt == "png" else {"Date": None, "Creator": None}
+    with matplotlib.rc_context({"svg.hashsalt": "coldindex", "svg.fonttype": "none"}):
+        _write_with(target, lambda p: fig.savefig(p, format=fmt, dpi=130, metadata=meta))
+    plt.close(fig)
+    return target
+
+
 def write_bytes(data: bytes, target: Path) -> Path:
     """Write raw bytes atomically."""
     return _write_with(target, lambda p: p.write_bytes(data))
