@@ -379,7 +379,7 @@ def project(traj: pd.DataFrame, obs_years: ArrayLike, obs_values: ArrayLike, cut
     end = int(traj["year"].max())
     for (model, scenario), g in traj.groupby(["model", "scenario"], sort=True):
         parts = []
-        for member, gm in g.groupby("member", sort=True):
+        for _, gm in g.groupby("member", sort=True):
             adj = adjust_series(gm["year"], gm["value"], oy, ov, options.adjust, cal, bound,
                                 options.qdm_window)
             parts.append(gm.assign(value_adjusted=adj))

@@ -374,8 +374,54 @@ OUTLOOK = Table(
     ),
 )
 
+PROJECTION = Table(
+    "projection.csv",
+    "Output of `coldindex project`: one row per model, scenario, member and year.",
+    (
+        Column("model", "-", "Climate model.", "str"),
+        Column("scenario", "-", "Emission scenario.", "str"),
+        Column("member", "-", "Ensemble member (`r1` when the input has none).", "str"),
+        Column("year", "-", "Year.", "int"),
+        Column("value", "as observed", "Model value as given (or computed from the gridded "
+               "fields).", "float"),
+        Column("value_adjusted", "as observed", "Bias-adjusted value (areas within [0, domain "
+               "area]).", "float"),
+        Column("class", "-", "`cold`, `average` or `warm` of the adjusted value under the "
+               "observed cut values.", "str"),
+        Column("p_cold", "1", "Probability of a cold year from the smooth expected value and "
+               "the residual spread (model and scenario, members pooled).", "float"),
+        Column("p_warm", "1", "Probability of a warm year (as above).", "float"),
+        Column("cold_freq_window", "1", "Share of cold member-years in the window of "
+               "`--window` years starting at this year (blank near the end).", "float"),
+    ),
+)
+
+EMERGENCE = Table(
+    "emergence.csv",
+    "Output of `coldindex project`: one row per model and scenario, plus an `ensemble "
+    "median` row per scenario (models weighted equally).",
+    (
+        Column("model", "-", "Climate model, or `ensemble median`.", "str"),
+        Column("scenario", "-", "Emission scenario.", "str"),
+        Column("last_cold_year", "-", "Last year with a cold adjusted value (any member).",
+               "int"),
+        Column("stop_year", "-", "First year from which P(at least one cold year in the "
+               "window) stays below `--p-stop`; blank when not by the end.", "int"),
+        Column("stopped", "-", "Whether cold years stop by the end of the trajectories.",
+               "bool"),
+        Column("spread", "as observed", "Residual SD about the smooth expected value.",
+               "float"),
+        Column("models", "1", "Ensemble rows: number of models.", "int"),
+        Column("models_stopped", "1", "Ensemble rows: models with a stop year.", "int"),
+        Column("stop_year_min", "-", "Ensemble rows: earliest model stop year.", "int"),
+        Column("stop_year_max", "-", "Ensemble rows: latest model stop year (blank when some "
+               "model has none by the end).", "int"),
+    ),
+)
+
 OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), FIELDS_VARIABLES, CLASSES,
-                                    CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK)
+                                    CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK,
+                                    PROJECTION, EMERGENCE)
 INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES)
 
 
@@ -418,3 +464,14 @@ def render_outputs_md(tables: Iterable[Table] | None = None) -> str:
 
 if __name__ == "__main__":  # pragma: no cover
     sys.stdout.write(render_outputs_md())
+
+
+def threshold_from_column(column: str) -> float | None:
+    """Inverse of :func:`area_column`: ``below_1p5c_km2`` -> 1.5; None for other names."""
+    import re
+
+    m = re.fullmatch(r"below_(m?)(\d+)(?:p(\d+))?c_km2(?:_map)?", column)
+    if not m:
+        return None
+    text = m.group(2) + (f".{m.group(3)}" if m.group(3) else "")
+    return -float(text) if m.group(1) else float(text)

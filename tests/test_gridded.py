@@ -1,0 +1,128 @@
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+from typer.testing import CliRunner
+
+from coldindex.cli import app
+from coldindex.domain import make_grid
+from coldindex.errors import InputError
+from coldindex.gridded import adjust_cells, trajectories_from_netcdf
+from coldindex.io.writers import fields_dataset, write_json, write_netcdf
+
+YEARS_OBS = np.arange(2001, 2009)
+
+
+def truth(lat, year, month, offset):
+    """Analytic model temperature [degC]: linear in latitude, so bilinear is exact."""
+    return 2.0 * (lat - 61.0) + 0.05 * (year - 2001) + np.cos(2 * np.pi * (month - 7) / 12) \
+        + offset
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory, box_domain):
+    d = tmp_path_factory.mktemp("gridded")
+    grid = make_grid(box_domain, 10.0)
+    lat = grid.lat[grid.mask]
+    obs = np.array([2.0 * (lat - 61.0) + 0.3 + 0.02 * (y - 2001) for y in YEARS_OBS])
+    casts = pd.DataFrame({"year": [2001], "lat": [61.0], "lon": [180.0], "bottom_c": [0.0]})
+    ds = fields_dataset(list(YEARS_OBS), obs, np.full_like(obs, 0.1), [0.0], grid, box_domain,
+                        casts)
+    write_netcdf(ds, d / "fields.nc")
+    write_json(box_domain.to_geojson(), d / "domain.geojson")
+    time = pd.date_range("2001-01-15", "2030-12-15", freq="MS") + pd.Timedelta(days=14)
+    mlat = np.arange(59.0, 63.01, 0.25)
+    mlon = np.arange(176.0, 184.01, 0.5)  # 0..360 convention across 180
+    yy, mm = time.year.to_numpy(), time.month.to_numpy()
+    data = np.stack([truth(mlat[None, :, None], yy[:, None, None], mm[:, None, None], off)
+                     * np.ones((1, 1, len(mlon))) + 273.15 for off in (0.0, 1.0)])
+    model = xr.Dataset({"tob": (("model", "time", "lat", "lon"), data.astype("float32"),
+                                {"units": "K"})},
+                       coords={"model": ["A", "B"], "time": time, "lat": mlat, "lon": mlon},
+                       attrs={"scenario": "high"})
+    model.to_netcdf(d / "model.nc")
+    return d, grid
+
+
+def test_gridded_mean_matches_analytic_truth(files):
+    d, grid = files
+    tr = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c", "tob",
+                                  "6-8", "none", None)
+    assert set(tr["model"]) == {"A", "B"} and set(tr["scenario"]) == {"high"}
+    area = grid.area_km2[grid.mask]
+    lat = grid.lat[grid.mask]
+    season = np.mean([np.cos(2 * np.pi * (m - 7) / 12) for m in (6, 7, 8)])
+    for model, off in (("A", 0.0), ("B", 1.0)):
+        g = tr[tr["model"] == model].set_index("year")["value"]
+        for y in (2001, 2015, 2030):
+            expect = np.sum(area * (2.0 * (lat - 61.0))) / area.sum() + 0.05 * (y - 2001) \
+                + season + off
+            assert g[y] == pytest.approx(expect, abs=1e-4)  # float32 storage
+
+
+def test_delta_per_cell_matches_observed_calibration(files):
+    d, _ = files
+    tr = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c", "tob",
+                                  "6-8", "delta", (2001, 2008))
+    with xr.open_dataset(d / "fields.nc") as ds:
+        obs_mean = np.nanmean(
+            [np.nansum(ds["bottom_temperature"].values[k] * ds["cell_area"].values)
+             / np.nansum(ds["cell_area"].values) for k in range(len(YEARS_OBS))])
+    cal = tr[(tr["year"] <= 2008)].groupby("model")["value"].mean()
+    np.testing.assert_allclose(cal.to_numpy(), obs_mean, atol=1e-4)
+
+
+def test_area_column_and_adjust_cells_refuses_qdm(files):
+    d, _ = files
+    tr = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "below_0c_km2", "tob",
+                                  "6-8", "none", None)
+    assert (tr["value"] >= 0).all()
+    with pytest.raises(InputError, match="not available on the gridded path"):
+        adjust_cells(np.zeros((10, 3)), np.arange(2001, 2011), np.zeros((10, 3)),
+                     np.arange(2001, 2011), "qdm", (2001, 2010))
+
+
+def test_missing_variable_is_named(files):
+    d, _ = files
+    with pytest.raises(InputError, match="variables present: tob"):
+        trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c", "thetao",
+                                 "6-8", "none", None)
+
+
+def test_distributed_equals_local(files):
+    from distributed import LocalCluster
+
+    d, _ = files
+    local = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c", "tob",
+                                     "6-8", "delta", (2001, 2008))
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                      dashboard_address=None) as cluster:
+        dist = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c",
+                                        "tob", "6-8", "delta", (2001, 2008),
+                                        scheduler=cluster.scheduler_address)
+    pd.testing.assert_frame_equal(local, dist)
+
+
+def test_gridded_cli_equals_csv_path(files, tmp_path: Path):
+    d, _ = files
+    obs = tmp_path / "obs.csv"
+    pd.DataFrame({"year": YEARS_OBS, "bottom_mean_c": 0.3 + 0.02 * (YEARS_OBS - 2001)}).to_csv(
+        obs, index=False)
+    runner = CliRunner()
+    r1 = runner.invoke(app, ["project", str(d / "model.nc"), "--observed", str(obs),
+                             "--value", "bottom_mean_c", "--out", str(tmp_path / "g"),
+                             "--fields", str(d / "fields.nc"), "--var", "tob",
+                             "--adjust", "delta"])
+    assert r1.exit_code == 0, r1.output
+    tr = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c", "tob",
+                                  "6-8", "delta", None)
+    csv = tmp_path / "traj.csv"
+    tr.to_csv(csv, index=False)
+    r2 = runner.invoke(app, ["project", str(csv), "--observed", str(obs), "--value",
+                             "bottom_mean_c", "--out", str(tmp_path / "c"), "--adjust", "none"])
+    assert r2.exit_code == 0, r2.output
+    a = pd.read_csv(tmp_path / "g" / "projection.csv")
+    b = pd.read_csv(tmp_path / "c" / "projection.csv")
+    pd.testing.assert_frame_equal(a, b)
