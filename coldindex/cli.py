@@ -528,20 +528,81 @@ def project(
         out_console.print(f"Wrote {p}")
 
 
+def _run_update(cfg: Any, out: Path, previous: Path | None) -> None:
+    from coldindex.pipeline import UPDATE_STAGES, run_update
+
+    progress = Progress(TextColumn("[bold]Annual update"), BarColumn(), MofNCompleteColumn(),
+                        TextColumn("{task.description}"), TimeElapsedColumn(),
+                        console=err_console, transient=True)
+    with progress:
+        task = progress.add_task("", total=len(UPDATE_STAGES))
+        seen: list[str] = []
+
+        def on_stage(name: str) -> None:
+            if seen:
+                progress.update(task, advance=1)
+            seen.append(name)
+            progress.update(task, description=name)
+
+        run = run_update(cfg, out, previous, on_stage)
+    for note in run.notes:
+        out_console.print(f"Note: {note}.")
+    for h in run.headlines:
+        out_console.print(f"- {h}")
+    out_console.print(f"Release written to {run.release} (report: {run.release / 'report.html'}).")
+
+
+@app.command()
+@_guard
+def update(
+    config: Annotated[Path, typer.Argument(help="TOML configuration (see coldindex init).")],
+    out: Annotated[Path | None, typer.Option(
+        "--out", help="Folder holding the releases (default: 'releases' beside the config).")
+    ] = None,
+    previous: Annotated[Path | None, typer.Option(
+        help="Release to compare with (default: the one OUT/latest names).")] = None,
+) -> None:
+    """Run every stage into a new release: indices, classes, shifts, skill, projections, report."""
+    from coldindex.config import load_config
+
+    cfg = load_config(config)
+    _run_update(cfg, out or config.parent / "releases", previous)
+
+
+@app.command()
+@_guard
+def init(
+    folder: Annotated[Path, typer.Argument(help="Folder for the new coldindex.toml.")],
+) -> None:
+    """Write a commented configuration template to FOLDER/coldindex.toml."""
+    from coldindex.config import TEMPLATE
+    from coldindex.errors import OutputError
+    from coldindex.io.writers import prepare_out_dir, write_bytes
+
+    prepare_out_dir(folder)
+    target = folder / "coldindex.toml"
+    if target.exists():
+        raise OutputError(f"{target} already exists; remove it or choose another folder.")
+    write_bytes(TEMPLATE.encode("utf-8"), target)
+    out_console.print(f"Wrote {target}; set inputs.casts and run coldindex update {target}.")
+
+
 @app.command()
 @_guard
 def demo(
     folder: Annotated[Path, typer.Argument(help="Folder for the demo.")] = Path(
         "coldindex-demo"),
     sims: Annotated[int, typer.Option(help="Conditional simulations a year.")] = 200,
+    boot: Annotated[int, typer.Option(help="Bootstrap replicates of the shift test.")] = 999,
 ) -> None:
-    """Write the invented sample inputs to DIR/inputs and compute the release in DIR/release.
+    """Write the invented sample inputs to DIR/inputs and run the whole update into DIR/release.
 
-    The release holds the indices (index), the year classes of the mean bottom
-    temperature (classify), its regime shifts (shifts), the skill of winter ice
-    for it with next summer's outlook (skill), and when cold years stop under the
-    model trajectories (project).
+    The release holds the indices, year classes, regime shifts, the skill of winter
+    ice with next summer's outlook, the projections, covariates and report.html.
     """
+    import dataclasses
+
+    from coldindex.config import load_config
     from coldindex.demo import write_scenario
     from coldindex.io.writers import prepare_out_dir
 
@@ -549,16 +610,10 @@ def demo(
     inputs = folder / "inputs"
     write_scenario(inputs)
     out_console.print(f"Wrote the invented inputs to {inputs}")
-    release = folder / "release"
-    index(inputs / "casts.csv", out=release, domain=inputs / "domain.geojson",
-          bathymetry=inputs / "bathymetry.nc", sims=sims)
-    classify(release / "indices.csv", value="bottom_mean_c", out=release)
-    shifts(release / "indices.csv", value="bottom_mean_c", out=release)
-    skill(ice=inputs / "ice.csv", target=release / "indices.csv", value="bottom_mean_c",
-          out=release, cuts=release / "cuts.json")
-    project([inputs / "trajectories.csv"], observed=release / "indices.csv",
-            value="bottom_mean_c", out=release, cuts=release / "cuts.json", units="degC")
-    out_console.print(f"The release is in {release}.")
+    cfg = load_config(inputs / "coldindex.toml")
+    cfg = dataclasses.replace(cfg, index=dataclasses.replace(cfg.index, sims=sims),
+                              shifts=dataclasses.replace(cfg.shifts, boot=boot))
+    _run_update(cfg, folder / "release", None)
 
 
 def main() -> None:

@@ -93,6 +93,105 @@ class IndexOptions:
 
 
 @dataclass(frozen=True)
+class ClassifyConfig:
+    """``[classify]``: the columns classified each year and the cut-value rule."""
+
+    columns: tuple[str, ...] = ("bottom_mean_c", "below_2c_km2")
+    rule: str = "tercile"
+    reference: str = ""
+
+    def __post_init__(self) -> None:
+        _check(len(self.columns) > 0, "classify.columns", "at least one column", self.columns)
+        _check(self.rule == "tercile" or self.rule.startswith("sd:"), "classify.rule",
+               "tercile or sd:K", self.rule)
+
+
+@dataclass(frozen=True)
+class ShiftsConfig:
+    """``[shifts]``: regime-shift settings (see ``coldindex shifts``)."""
+
+    column: str = "bottom_mean_c"
+    method: str = "both"
+    cutoff: int = 10
+    alpha: float = 0.1
+    huber: float = 1.0
+    prewhiten: str = "none"
+    min_size: int = 5
+    boot: int = 999
+    seed: int = 20261201
+
+    def __post_init__(self) -> None:
+        _check(self.method in ("stars", "pelt", "both"), "shifts.method",
+               "one of stars, pelt, both", self.method)
+        _check(self.prewhiten in ("none", "ip4", "mpk"), "shifts.prewhiten",
+               "one of none, ip4, mpk", self.prewhiten)
+        _check(self.boot >= 0, "shifts.boot", "a whole number >= 0", self.boot)
+
+
+@dataclass(frozen=True)
+class SkillConfig:
+    """``[skill]``: ice-skill settings (see ``coldindex skill``)."""
+
+    column: str = "bottom_mean_c"
+    months: str = "11-4"
+    winter: str = "mean"
+    lags: str = "0-2"
+    confidence: float = 0.9
+    leave_out: int = 3
+
+    def __post_init__(self) -> None:
+        _check(self.winter in ("mean", "max"), "skill.winter", "mean or max", self.winter)
+        _check(0 < self.confidence < 1, "skill.confidence", "a value in (0, 1)",
+               self.confidence)
+        _check(self.leave_out >= 1 and self.leave_out % 2 == 1, "skill.leave_out",
+               "an odd whole number >= 1", self.leave_out)
+
+
+@dataclass(frozen=True)
+class ProjectConfig:
+    """``[project]``: projection settings (see ``coldindex project``)."""
+
+    column: str = "bottom_mean_c"
+    adjust: str = "qdm"
+    calibration: str = ""
+    window: int = 10
+    p_stop: float = 0.1
+    units: str = "degC"
+
+    def __post_init__(self) -> None:
+        _check(self.adjust in ("none", "delta", "qmap", "qdm"), "project.adjust",
+               "one of none, delta, qmap, qdm", self.adjust)
+        _check(self.window >= 1, "project.window", "a whole number >= 1", self.window)
+        _check(0 < self.p_stop < 1, "project.p_stop", "a value in (0, 1)", self.p_stop)
+
+
+@dataclass(frozen=True)
+class CovariatesConfig:
+    """``[covariates]``: the assessor's covariate table."""
+
+    columns: tuple[str, ...] = ("bottom_mean_c", "below_2c_km2", "below_0c_km2")
+    lags: tuple[int, ...] = (1,)
+    reference: str = ""
+
+    def __post_init__(self) -> None:
+        _check(all(lag >= 1 for lag in self.lags), "covariates.lags", "whole numbers >= 1",
+               self.lags)
+
+
+@dataclass(frozen=True)
+class ReportConfig:
+    """``[report]``: figures and the HTML page."""
+
+    map_years: int = 4
+    title: str = "Bottom-temperature indicators"
+    tolerance: float = 1e-6
+
+    def __post_init__(self) -> None:
+        _check(1 <= self.map_years <= 12, "report.map_years", "a whole number in 1..12",
+               self.map_years)
+
+
+@dataclass(frozen=True)
 class Inputs:
     """Input paths (``[inputs]``), resolved relative to the config file."""
 
@@ -101,6 +200,7 @@ class Inputs:
     bathymetry: Path | None = None
     ice: Path | None = None
     trajectories: tuple[Path, ...] = ()
+    coastline: Path | None = None
 
 
 @dataclass(frozen=True)
@@ -112,11 +212,19 @@ class Config:
     ice_columns: Mapping[str, str] = field(default_factory=dict)
     trajectory_columns: Mapping[str, str] = field(default_factory=dict)
     index: IndexOptions = field(default_factory=IndexOptions)
+    classify: ClassifyConfig = field(default_factory=ClassifyConfig)
+    shifts: ShiftsConfig = field(default_factory=ShiftsConfig)
+    skill: SkillConfig = field(default_factory=SkillConfig)
+    project: ProjectConfig = field(default_factory=ProjectConfig)
+    covariates: CovariatesConfig = field(default_factory=CovariatesConfig)
+    report: ReportConfig = field(default_factory=ReportConfig)
     source: Path | None = None
 
 
-# Tables later stages fill in; accepted now so a config can be written ahead.
-_RESERVED_TABLES = ("classify", "shifts", "skill", "project", "report", "covariates")
+_STAGE_TABLES: dict[str, type] = {"index": IndexOptions, "classify": ClassifyConfig,
+                                   "shifts": ShiftsConfig, "skill": SkillConfig,
+                                   "project": ProjectConfig, "covariates": CovariatesConfig,
+                                   "report": ReportConfig}
 
 
 def _check(ok: bool, key: str, expected: str, got: object) -> None:
@@ -142,15 +250,21 @@ def _coerce(key: str, value: Any, default: Any) -> Any:
         return value
     if isinstance(default, tuple):
         _check(isinstance(value, list), key, "a list", value)
-        return tuple(float(v) for v in value)
+        kind = type(default[0]) if default else float
+        ok = all(isinstance(v, str) for v in value) if kind is str else all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
+        _check(ok, key, f"a list of {'names' if kind is str else 'numbers'}", value)
+        return tuple(kind(v) for v in value)
     return value  # pragma: no cover
 
 
-def index_options_from_mapping(table: Mapping[str, Any], where: str = "index") -> IndexOptions:
-    """Build :class:`IndexOptions` from a mapping, refusing unknown keys.
+def options_from_mapping(cls: type, table: Mapping[str, Any], where: str) -> Any:
+    """Build a stage's options dataclass from a mapping, refusing unknown keys.
 
     Parameters
     ----------
+    cls
+        The dataclass (e.g. :class:`IndexOptions`).
     table
         Key/value pairs, e.g. the ``[index]`` table of a config.
     where
@@ -158,18 +272,24 @@ def index_options_from_mapping(table: Mapping[str, Any], where: str = "index") -
 
     Returns
     -------
-    IndexOptions
+    object
         The validated options.
     """
-    defaults = IndexOptions()
-    allowed = {f.name for f in fields(IndexOptions)}
+    defaults = cls()
+    allowed = {f.name for f in fields(cls)}
     kwargs: dict[str, Any] = {}
     for key, value in table.items():
         if key not in allowed:
             raise ConfigError(f"{where}.{key} is not a known key; allowed keys: "
                               f"{', '.join(sorted(allowed))}.")
         kwargs[key] = _coerce(f"{where}.{key}", value, getattr(defaults, key))
-    return IndexOptions(**kwargs)
+    return cls(**kwargs)
+
+
+def index_options_from_mapping(table: Mapping[str, Any], where: str = "index") -> IndexOptions:
+    """Build :class:`IndexOptions` from a mapping (see :func:`options_from_mapping`)."""
+    result: IndexOptions = options_from_mapping(IndexOptions, table, where)
+    return result
 
 
 def parse_column_map(text: str | None, option: str = "--columns") -> dict[str, str]:
@@ -238,8 +358,7 @@ def load_config(path: Path) -> Config:
 def config_from_mapping(raw: Mapping[str, Any], base: Path, source: Path | None = None
                         ) -> Config:
     """Validate a parsed config mapping; see :func:`load_config`."""
-    known = {"inputs", "columns", "ice_columns", "trajectory_columns", "index",
-             *_RESERVED_TABLES}
+    known = {"inputs", "columns", "ice_columns", "trajectory_columns", *_STAGE_TABLES}
     for key in raw:
         if key not in known:
             raise ConfigError(f"[{key}] is not a known table; allowed tables: "
@@ -260,14 +379,83 @@ def config_from_mapping(raw: Mapping[str, Any], base: Path, source: Path | None 
         else:
             _check(isinstance(value, str), f"inputs.{key}", "a path (string)", value)
             paths[key] = base / value
-    for key in _RESERVED_TABLES:
+    stages = {}
+    for key, cls in _STAGE_TABLES.items():
         _check(isinstance(raw.get(key, {}), dict), key, "a table", raw.get(key))
+        stages[key] = options_from_mapping(cls, raw.get(key, {}), key)
     return Config(
         inputs=Inputs(**paths),
         columns=_string_map(raw.get("columns", {}), "columns"),
         ice_columns=_string_map(raw.get("ice_columns", {}), "ice_columns"),
         trajectory_columns=_string_map(raw.get("trajectory_columns", {}),
                                        "trajectory_columns"),
-        index=index_options_from_mapping(raw.get("index", {})),
-        source=source,
+        source=source, **stages,
     )
+
+
+TEMPLATE = """# coldindex configuration: one file drives `coldindex update`.
+# Paths are relative to this file. Every key is optional except inputs.casts.
+
+[inputs]
+casts = "casts.csv"                  # CSV or Parquet: year, lat, lon, bottom_c, ...
+domain = "domain.geojson"            # optional: without it a domain is derived and frozen
+bathymetry = "bathymetry.nc"         # optional: depth as external drift for kriging
+ice = "ice.csv"                      # optional: monthly ice (year, month, ice) for the skill stage
+trajectories = ["trajectories.csv"]  # optional: model trajectories for the projection stage
+
+[columns]
+# Map your casts headers to ours: ours = "theirs", e.g. bottom_c = "TempBottom"
+
+[ice_columns]
+# year = "Yr", month = "Mon", ice = "IceMass"
+
+[trajectory_columns]
+# model = "GCM", value = "tob"
+
+[index]
+thresholds = [2.0, 0.0]   # degC
+grid_km = 5.0             # equal-area grid cell side, km
+sims = 200                # conditional simulations a year (0 = off)
+seed = 20261201           # each year draws from SeedSequence([seed, year])
+min_casts = 30
+min_coverage = 0.75       # share of the domain within 1.5 station spacings of a cast
+method = "kriging"        # kriging or idw
+variogram = "auto"        # exponential, spherical, matern, gaussian, or auto (then frozen)
+
+[classify]
+columns = ["bottom_mean_c", "below_2c_km2"]
+rule = "tercile"          # tercile or sd:K
+reference = ""            # A-B, empty = whole record
+
+[shifts]
+column = "bottom_mean_c"
+method = "both"           # stars, pelt or both
+cutoff = 10
+alpha = 0.1
+boot = 999
+
+[skill]
+column = "bottom_mean_c"
+months = "11-4"           # winter months; November and December belong to the next year's winter
+winter = "mean"           # mean or max
+lags = "0-2"
+leave_out = 3
+
+[project]
+column = "bottom_mean_c"
+adjust = "qdm"            # none, delta, qmap, qdm
+calibration = ""          # A-B, empty = overlap of model and observed years
+window = 10
+p_stop = 0.1
+units = "degC"
+
+[covariates]
+columns = ["bottom_mean_c", "below_2c_km2", "below_0c_km2"]
+lags = [1]
+reference = ""
+
+[report]
+map_years = 4
+title = "Bottom-temperature indicators"
+tolerance = 1e-6          # relative change that counts as a revision
+"""

@@ -32,6 +32,7 @@ import shapely
 import xarray as xr
 from shapely.geometry import Polygon
 
+from coldindex.config import TEMPLATE
 from coldindex.domain import Domain, domain_from_polygon, wrap_lon
 from coldindex.io.writers import atomic_path, write_bytes, write_csv, write_json
 
@@ -47,28 +48,6 @@ SHELF = [  # lon, lat of the invented shelf's outline (crosses 180°)
 MODELS = ("Aster", "Borea", "Cirrus", "Dunlin")
 SCENARIOS = {"moderate": 0.012, "high": 0.032}  # warming after 2025, degC per year
 
-CONFIG_TEMPLATE = """# coldindex configuration for the invented demo shelf.
-# Paths are relative to this file.
-[inputs]
-casts = "casts.csv"
-domain = "domain.geojson"
-bathymetry = "bathymetry.nc"
-ice = "ice.csv"
-trajectories = ["trajectories.csv"]
-
-[columns]
-# ours = "theirs": map your own headers, e.g. bottom_c = "TempBottom"
-
-[index]
-thresholds = [2.0, 0.0]
-grid_km = 5.0
-sims = 200
-seed = 20261201
-min_casts = 30
-min_coverage = 0.75
-method = "kriging"
-variogram = "auto"
-"""
 
 
 def _polygon() -> Polygon:
@@ -268,7 +247,7 @@ def write_scenario(out: Path, seed: int = SEED) -> list[Path]:
         write_csv(sc.ice, out / "ice.csv"),
         write_csv(sc.trajectories, out / "trajectories.csv"),
         write_json(sc.domain, out / "domain.geojson"),
-        write_bytes(CONFIG_TEMPLATE.encode(), out / "coldindex.toml"),
+        write_bytes(TEMPLATE.encode(), out / "coldindex.toml"),
     ]
     with atomic_path(out / "bathymetry.nc") as tmp:
         sc.bathymetry.to_netcdf(tmp, engine="scipy", format="NETCDF3_64BIT")

@@ -419,9 +419,45 @@ EMERGENCE = Table(
     ),
 )
 
+COVARIATES = Table(
+    "covariates.csv",
+    "Output of `coldindex update`: the assessor's covariates, one row a year (every year "
+    "from the first to the last, blank where a year has no value). For each chosen index "
+    "`<col>`: the value, `<col>_sd`, `<col>_lo90`, `<col>_hi90` (when simulated), `<col>_z` "
+    "and lagged copies. Example: to pair a year-class spawned in year Y with the bottom "
+    "temperature of its first summer (Y + 1), use the row of year Y + 1 and `bottom_mean_c`; "
+    "with the summer before spawning, use the row of year Y + 1 and `bottom_mean_c_lag2`.",
+    (
+        Column("year", "-", "Year.", "int"),
+        Column("<col>", "as indices.csv", "The index.", "float"),
+        Column("<col>_sd, <col>_lo90, <col>_hi90", "as indices.csv", "Its simulation SD and "
+               "90 % interval.", "float"),
+        Column("<col>_z", "1", "Standardized anomaly over the reference period (ddof = 1).",
+               "float"),
+        Column("<col>_lag<k>, <col>_z_lag<k>", "as above", "The value (and z) of k years "
+               "earlier, on the later year's row; aligned by year, never by row.", "float"),
+    ),
+)
+
+REVISIONS = Table(
+    "revisions.csv",
+    "Output of `coldindex update`: every past value of indices.csv that changed beyond the "
+    "tolerance since the previous release.",
+    (
+        Column("year", "-", "Year of the value.", "int"),
+        Column("column", "-", "Column of indices.csv.", "str"),
+        Column("previous", "as column", "Value in the previous release.", "float"),
+        Column("current", "as column", "Value now.", "float"),
+        Column("change", "as column", "Current minus previous.", "float"),
+        Column("cause", "-", "Likely cause read from the two provenance files: that year's "
+               "casts changed, parameters changed, tool version changed, domain geometry or "
+               "variogram family changed.", "str"),
+    ),
+)
+
 OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), FIELDS_VARIABLES, CLASSES,
                                     CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK,
-                                    PROJECTION, EMERGENCE)
+                                    PROJECTION, EMERGENCE, COVARIATES, REVISIONS)
 INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES)
 
 

@@ -20,7 +20,8 @@ def run(*args):
     return result.exit_code, text
 
 
-@pytest.mark.parametrize("cmd", [[], ["check"], ["index"], ["demo"]])
+@pytest.mark.parametrize("cmd", [[], ["check"], ["index"], ["classify"], ["shifts"], ["skill"],
+                                 ["project"], ["update"], ["init"], ["demo"]])
 def test_help_everywhere(cmd):
     code, text = run(*cmd, "--help")
     assert code == 0 and "Usage" in text

@@ -41,9 +41,18 @@ def test_demo_command_end_to_end(tmp_path: Path):
 
     from coldindex.cli import app
 
-    result = CliRunner().invoke(app, ["demo", str(tmp_path / "d"), "--sims", "4"])
+    result = CliRunner().invoke(app, ["demo", str(tmp_path / "d"), "--sims", "4", "--boot",
+                                      "99"])
     assert result.exit_code == 0, result.output
-    ind = pd.read_csv(tmp_path / "d" / "release" / "indices.csv")
+    release = tmp_path / "d" / "release" / "release-1"
+    assert (tmp_path / "d" / "release" / "latest").read_text().strip() == "release-1"
+    for name in ("report.html", "covariates.csv", "projection.csv", "outlook.json"):
+        assert (release / name).is_file()
+    assert "Under scenario high" in result.output
+    # The planted 2002 warm shift survives the red-noise test.
+    shifts = pd.read_csv(release / "shifts.csv")
+    assert ((shifts["year"] == 2002) & (shifts["p_value"] < 0.1)).any()
+    ind = pd.read_csv(release / "indices.csv")
     assert ind["year"].nunique() >= 40
     note_1987 = ind.set_index("year").loc[1987, "note"]
     assert "coverage" in note_1987

@@ -80,10 +80,11 @@ def write_netcdf(ds: xr.Dataset, target: Path) -> Path:
     return _write_with(target, lambda p: ds.to_netcdf(p, engine="netcdf4", encoding=encoding))
 
 
-def write_figure(fig: Any, target: Path) -> Path:
+def write_figure(fig: Any, target: Path, close: bool = True) -> Path:
     """Save a matplotlib figure reproducibly (no timestamps; fixed SVG ids), atomically.
 
-    The format follows the suffix (``.png`` or ``.svg``); the figure is closed.
+    The format follows the suffix (``.png`` or ``.svg``); the figure is closed unless
+    ``close`` is false (to save it again in another format).
     """
     import matplotlib
     import matplotlib.pyplot as plt
@@ -92,7 +93,8 @@ def write_figure(fig: Any, target: Path) -> Path:
     meta = {"Software": None} if fmt == "png" else {"Date": None, "Creator": None}
     with matplotlib.rc_context({"svg.hashsalt": "coldindex", "svg.fonttype": "none"}):
         _write_with(target, lambda p: fig.savefig(p, format=fmt, dpi=130, metadata=meta))
-    plt.close(fig)
+    if close:
+        plt.close(fig)
     return target
 
 

@@ -147,3 +147,113 @@ def projection_figure(projection: pd.DataFrame, emergence: pd.DataFrame) -> Figu
                        title_fontsize=8)
     fig.tight_layout()
     return fig
+
+
+CLASS_COLOURS = {"cold": COLD, "average": "#bdbdbd", "warm": WARM}
+
+
+def series_figure(indices: pd.DataFrame, columns: list[tuple[str, str]],
+                  classes: pd.DataFrame | None = None,
+                  regimes: pd.DataFrame | None = None) -> Figure:
+    """Index series with 90 % bands, year classes as coloured markers, regime means.
+
+    Parameters
+    ----------
+    indices
+        ``indices.csv`` as a frame.
+    columns
+        ``(column, label)`` pairs, one panel each.
+    classes
+        Tidy classes (``column``, ``year``, ``class``), optional.
+    regimes
+        ``regimes.csv`` of the first column (``method``, ``start``, ``end``, ``mean``), optional.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        The figure.
+    """
+    fig, axes = plt.subplots(len(columns), 1, figsize=(8.5, 2.7 * len(columns)), sharex=True,
+                             squeeze=False)
+    for k, (ax, (col, label)) in enumerate(zip(axes[:, 0], columns, strict=True)):
+        y = indices["year"].to_numpy()
+        v = indices[col].to_numpy(float)
+        if f"{col}_lo90" in indices:
+            ax.fill_between(y, indices[f"{col}_lo90"], indices[f"{col}_hi90"], color="#c6dbef",
+                            label="90 % interval", step=None)
+        ax.plot(y, v, "-", color="black", lw=1.0, zorder=2)
+        if classes is not None:
+            c = classes[classes["column"] == col].set_index("year")["class"]
+            for cls, colour in CLASS_COLOURS.items():
+                yrs = [yr for yr in y if c.get(yr, "") == cls]
+                vals = indices.set_index("year").loc[yrs, col]
+                ax.scatter(yrs, vals, s=28, color=colour, edgecolor="black", linewidths=0.4,
+                           zorder=3, marker={"cold": "v", "average": "o", "warm": "^"}[cls],
+                           label=cls)
+        if regimes is not None and k == 0:
+            for _, r in regimes[regimes["method"] == "stars"].iterrows():
+                ax.hlines(r["mean"], r["start"] - 0.5, r["end"] + 0.5, color=WARM, lw=2.0,
+                          linestyles="--", zorder=4)
+        ax.set_ylabel(label)
+        ax.grid(alpha=0.3)
+    axes[0, 0].legend(fontsize=8, ncol=4, frameon=False, loc="upper left")
+    axes[-1, 0].set_xlabel("year")
+    if regimes is not None:
+        axes[0, 0].set_title("dashed: STARS regime means", fontsize=9, loc="right")
+    fig.tight_layout()
+    return fig
+
+
+def maps_figure(years: list[int], fields: np.ndarray, grid_x: np.ndarray, grid_y: np.ndarray,
+                outline: list[np.ndarray], casts: list[np.ndarray],
+                contour: float = 2.0) -> Figure:
+    """Small multiples of the kriged bottom temperature for some years.
+
+    Parameters
+    ----------
+    years
+        The years shown.
+    fields
+        Maps on the grid, (len(years), ny, nx), NaN outside the domain. [°C]
+    grid_x, grid_y
+        Cell-centre axes in the equal-area plane. [km]
+    outline
+        Domain outline rings, (k, 2) arrays in the same plane. [km]
+    casts
+        Cast positions per year, (n, 2) arrays. [km]
+    contour
+        Temperature of the drawn contour. [°C]
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        The figure.
+    """
+    n = len(years)
+    cols = min(n, 2)
+    rows = int(np.ceil(n / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(5.2 * cols, 3.4 * rows), squeeze=False)
+    finite = fields[np.isfinite(fields)]
+    vmin, vmax = (float(np.percentile(finite, 1)), float(np.percentile(finite, 99))) \
+        if finite.size else (0.0, 1.0)
+    cmap = LinearSegmentedColormap.from_list(
+        "coldindex_temperature", ["#0b2c4d", "#2f6a9e", "#8fb9d8", "#f3e6c5", "#e3a054",
+                                  "#9c3d0b"])
+    im = None
+    for ax, yr, f, xy in zip(axes.ravel(), years, fields, casts, strict=False):
+        im = ax.pcolormesh(grid_x, grid_y, f, cmap=cmap, vmin=vmin, vmax=vmax, shading="auto")
+        if np.nanmin(f) < contour < np.nanmax(f):
+            ax.contour(grid_x, grid_y, f, levels=[contour], colors="black", linewidths=1.2)
+        for ring in outline:
+            ax.plot(ring[:, 0], ring[:, 1], color="#333333", lw=0.8)
+        ax.plot(xy[:, 0], xy[:, 1], ".", color="black", ms=1.5)
+        ax.set_title(str(yr), fontsize=10)
+        ax.set_aspect("equal")
+        ax.set_xticks([])
+        ax.set_yticks([])
+    for ax in axes.ravel()[n:]:
+        ax.axis("off")
+    if im is not None:
+        fig.colorbar(im, ax=axes.ravel().tolist(), shrink=0.8,
+                     label=f"bottom temperature (°C); black line: {contour:g} °C")
+    return fig
