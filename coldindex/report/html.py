@@ -39,7 +39,9 @@ def table_html(df: pd.DataFrame, digits: int = 3, max_rows: int = 60) -> str:
 
     def fmt(v: object) -> str:
         if isinstance(v, float):
-            return "" if v != v else f"{v:.{digits}g}"
+            if v != v:
+                return ""
+            return f"{v:,.0f}" if abs(v) >= 1000 else f"{v:.{digits}g}"
         return html.escape(str(v)) if v is not None and v is not pd.NA else ""
 
     head = "".join(f"<th>{html.escape(str(c))}</th>" for c in shown.columns)
