@@ -112,14 +112,21 @@ def _season_means(da: xr.DataArray, months: list[int], path: Path) -> xr.DataArr
 
 
 def model_fields(path: Path, var: str | None, season: list[int], cell_lon: FloatArray,
-                 cell_lat: FloatArray, chunks: int = 366) -> dict[str, xr.DataArray]:
-    """Lazy annual season-mean fields of every model in a file, on the survey cells.
+                 cell_lat: FloatArray, distributed: bool = False, chunks: int = 365
+                 ) -> list[tuple[str, str, NDArray[np.int_], FloatArray]]:
+    """Annual season-mean fields of every model in a file, on the survey cells.
+
+    The file is opened lazily (dask, the file's own time chunks), reduced and
+    interpolated chunk by chunk, computed, and closed before returning, so no
+    file handle outlives the call.
 
     Returns
     -------
-    dict
-        ``{model: DataArray(year, cell)}`` (dask-backed) in degC.
+    list
+        ``(model, scenario, years, values)`` with values (year, cell) in degC.
     """
+    import dask
+
     if not path.is_file():
         raise InputError(f"{path} does not exist; check the path.")
     try:
@@ -127,56 +134,60 @@ def model_fields(path: Path, var: str | None, season: list[int], cell_lon: Float
     except Exception as exc:  # netCDF backends raise many error types
         raise InputError(f"{path} cannot be read as NetCDF ({type(exc).__name__}); check "
                          "that the file is complete.") from None
-    tdim = next((d for d in ds.dims if str(d).lower() in ("time", "t")), None)
-    if tdim is not None:
-        # Keep the file's own chunks along time (reading across them reads twice); only
-        # merge them when they are very short.
-        first = ds.chunks.get(tdim, (ds.sizes[tdim],))[0] if ds.chunks else ds.sizes[tdim]
-        if first < 28:
-            ds = ds.chunk({tdim: chunks})
-    candidates = [v for v in ds.data_vars if ds[v].ndim >= 3]
-    if var is None:
-        if len(candidates) != 1:
-            raise InputError(f"{path}: name the bottom-temperature variable with --var "
-                             f"(variables present: {', '.join(map(str, ds.data_vars))}).")
-        var = str(candidates[0])
-    if var not in ds.data_vars:
-        raise InputError(f"{path} has no variable {var!r}; variables present: "
-                         f"{', '.join(map(str, ds.data_vars))}.")
-    lat_name = _find(ds, LAT_NAMES, path, "latitude")
-    lon_name = _find(ds, LON_NAMES, path, "longitude")
-    lat = np.asarray(ds[lat_name].values, float)
-    lon_raw = np.asarray(ds[lon_name].values, float)
-    center = central_lon(cell_lon)
-    lon = unwrap_lon(lon_raw, center)
-    tlon = unwrap_lon(cell_lon, center)
-    da = _to_celsius(ds[var], path)
-    if lat.ndim == 1:
-        W = bilinear_weights(lon, lat, tlon, cell_lat)
-        space: tuple = (ds[lat_name].dims[0], ds[lon_name].dims[0])
-    else:
-        W = barycentric_weights(lon, lat, tlon, cell_lat)
-        space = tuple(ds[lat_name].dims)
-    if W.getnnz(axis=1).min() == 0:
-        raise InputError(f"{path}: the model grid does not cover every survey cell; give "
-                         "fields that cover the domain.")
-    models = ([str(m) for m in ds["model"].values] if "model" in da.dims
-              else [str(ds.attrs.get("model", path.stem))])
-    out = {}
-    for k, name in enumerate(models):
-        d = da.isel(model=k) if "model" in da.dims else da
-        annual = _season_means(d, season, path).transpose("year", *space)
-        flat = annual.data.reshape(annual.shape[0], -1)
-        cells = flat.map_blocks(lambda b, W=W: np.asarray((W @ b.T).T), dtype=float,
-                                chunks=(flat.chunks[0], (W.shape[0],)))
-        out[name] = xr.DataArray(cells, dims=("year", "cell"),
-                                 coords={"year": annual["year"].values},
-                                 attrs={"scenario": str(ds.attrs.get("scenario", "default"))})
+    out = []
+    with ds:
+        tdim = next((d for d in ds.dims if str(d).lower() in ("time", "t")), None)
+        if tdim is not None:
+            # Keep the file's own chunks along time (reading across them reads twice); only
+            # merge them when they are very short.
+            first = ds.chunks.get(tdim, (ds.sizes[tdim],))[0] if ds.chunks else ds.sizes[tdim]
+            if first < 28:
+                ds = ds.chunk({tdim: chunks})
+        candidates = [v for v in ds.data_vars if ds[v].ndim >= 3]
+        if var is None:
+            if len(candidates) != 1:
+                raise InputError(f"{path}: name the bottom-temperature variable with --var "
+                                 f"(variables present: {', '.join(map(str, ds.data_vars))}).")
+            var = str(candidates[0])
+        if var not in ds.data_vars:
+            raise InputError(f"{path} has no variable {var!r}; variables present: "
+                             f"{', '.join(map(str, ds.data_vars))}.")
+        lat_name = _find(ds, LAT_NAMES, path, "latitude")
+        lon_name = _find(ds, LON_NAMES, path, "longitude")
+        lat = np.asarray(ds[lat_name].values, float)
+        center = central_lon(cell_lon)
+        lon = unwrap_lon(np.asarray(ds[lon_name].values, float), center)
+        tlon = unwrap_lon(cell_lon, center)
+        da = _to_celsius(ds[var], path)
+        if lat.ndim == 1:
+            W = bilinear_weights(lon, lat, tlon, cell_lat)
+            space: tuple = (ds[lat_name].dims[0], ds[lon_name].dims[0])
+        else:
+            W = barycentric_weights(lon, lat, tlon, cell_lat)
+            space = tuple(ds[lat_name].dims)
+        if W.getnnz(axis=1).min() == 0:
+            raise InputError(f"{path}: the model grid does not cover every survey cell; give "
+                             "fields that cover the domain.")
+        models = ([str(m) for m in ds["model"].values] if "model" in da.dims
+                  else [str(ds.attrs.get("model", path.stem))])
+        scenario = str(ds.attrs.get("scenario", "default"))
+        for k, name in enumerate(models):
+            d = da.isel(model=k) if "model" in da.dims else da
+            annual = _season_means(d, season, path).transpose("year", *space)
+            flat = annual.data.reshape(annual.shape[0], -1)
+            cells = flat.map_blocks(lambda b, W=W: np.asarray((W @ b.T).T), dtype=float,
+                                    chunks=(flat.chunks[0], (W.shape[0],)))
+            if distributed:
+                values = np.asarray(cells.compute())
+            else:
+                with dask.config.set(scheduler="threads", num_workers=2):
+                    values = np.asarray(cells.compute())
+            out.append((name, scenario, annual["year"].values.astype(int), values))
     return out
 
 
-def adjust_cells(model: FloatArray, model_years: FloatArray, obs: FloatArray,
-                 obs_years: FloatArray, method: str, calibration: tuple[int, int]
+def adjust_cells(model: FloatArray, model_years: NDArray[np.int_], obs: FloatArray,
+                 obs_years: NDArray[np.int_], method: str, calibration: tuple[int, int]
                  ) -> FloatArray:
     """Adjust (year, cell) model temperatures per cell against observed fields."""
     if method == "none":
@@ -248,19 +259,12 @@ def trajectories_from_netcdf(paths: Sequence[Path], fields_path: Path, column: s
     rows = []
     with client_ctx:
         for path in paths:
-            for name, lazy in model_fields(Path(path), var, months, cell_lon, cell_lat).items():
-                if scheduler:
-                    model = np.asarray(lazy.data.compute())
-                else:
-                    import dask
-
-                    with dask.config.set(scheduler="threads", num_workers=2):
-                        model = np.asarray(lazy.data.compute())
-                years = lazy["year"].values.astype(int)
+            for name, scenario, years, model in model_fields(Path(path), var, months, cell_lon,
+                                                              cell_lat, bool(scheduler)):
                 cal = calibration or (int(max(years.min(), obs_years.min())),
                                       int(min(years.max(), obs_years.max())))
                 adjusted = adjust_cells(model, years, obs, obs_years, adjust, cal)
                 values = index_from_fields(adjusted, cell_area, column)
-                rows += [(name, lazy.attrs["scenario"], "r1", int(y), float(v))
+                rows += [(name, scenario, "r1", int(y), float(v))
                          for y, v in zip(years, values, strict=True)]
     return pd.DataFrame(rows, columns=["model", "scenario", "member", "year", "value"])

@@ -65,7 +65,7 @@ def area_below(values: ArrayLike, sd: ArrayLike | None, cell_area: ArrayLike,
         p = (m < threshold).astype(float)
     else:
         s = np.asarray(sd, float)
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             p = np.where(s > 0, ndtr((threshold - m) / np.where(s > 0, s, 1.0)),
                          (m < threshold).astype(float))
     return float(np.sum(a * p))

@@ -158,6 +158,7 @@ def run_qc(raw: pd.DataFrame, domain: Domain | None = None, *, source: str = "ca
     QCResult
         Every row with its flag, and the casts used.
     """
+    raw = raw.reset_index(drop=True)  # the rules below address rows by a unique index
     n = len(raw)
     flag = pd.Series(["ok"] * n, index=raw.index, dtype=object)
     detail = pd.Series([""] * n, index=raw.index, dtype=object)
@@ -185,8 +186,10 @@ def run_qc(raw: pd.DataFrame, domain: Domain | None = None, *, source: str = "ca
     df["station"] = raw["station"].astype(str) if "station" in raw.columns else ""
     df["date"] = raw["date"].astype(str) if "date" in raw.columns else ""
 
-    year_frac = df["year"] - np.round(df["year"])
-    mark(year_frac.abs().gt(0), "non_numeric", "year = " + df["year"].astype(str))
+    bad_year = df["year"].notna() & ((df["year"] - np.round(df["year"])).abs().gt(0)
+                                     | df["year"].lt(1000) | df["year"].gt(3000))
+    mark(bad_year, "non_numeric", "year = " + df["year"].astype(str) + " is not a year")
+    df.loc[bad_year, "year"] = np.nan
 
     lat_ok = df["lat"].notna()
     if lat_ok.sum() > 0:

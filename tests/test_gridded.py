@@ -97,7 +97,7 @@ def test_distributed_equals_local(files):
     d, _ = files
     local = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c", "tob",
                                      "6-8", "delta", (2001, 2008))
-    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
                       dashboard_address=None) as cluster:
         dist = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c",
                                         "tob", "6-8", "delta", (2001, 2008),

@@ -237,11 +237,24 @@ def read_bathymetry(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
             raise InputError(f"{path}: variable {pick[0]!r} needs lon and lat dimensions, "
                              f"has {', '.join(map(str, da.dims))}.")
         da = da.transpose(lat_name, lon_name)
-        values = np.asarray(da.values, dtype=float)
+        try:
+            values = np.asarray(da.values, dtype=float)
+            lon_axis = np.asarray(ds[lon_name].values, float)
+            lat_axis = np.asarray(ds[lat_name].values, float)
+        except Exception as exc:  # a truncated file fails only when read
+            raise InputError(f"{path} cannot be read ({type(exc).__name__}); check that the "
+                             "file is complete.") from None
+        for name, axis in (("lon", lon_axis), ("lat", lat_axis)):
+            steps = np.diff(axis)
+            if (len(axis) < 2 or not np.all(np.isfinite(axis))
+                    or not (np.all(steps > 0) or np.all(steps < 0))):
+                raise InputError(f"{path}: the {name} axis is not strictly monotonic; the file "
+                                 "is damaged or not on a regular lon/lat grid.")
+        if not np.isfinite(values).any():
+            raise InputError(f"{path} holds no finite depth; check the file.")
         if pick[0] in ("elevation", "z") or str(da.attrs.get("positive", "down")) == "up":
             values = -values
-        return (np.asarray(ds[lon_name].values, float), np.asarray(ds[lat_name].values, float),
-                values)
+        return lon_axis, lat_axis, values
 
 
 def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None,
