@@ -556,9 +556,8 @@ def _run_update(cfg: Any, out: Path, previous: Path | None) -> None:
 @_guard
 def update(
     config: Annotated[Path, typer.Argument(help="TOML configuration (see coldindex init).")],
-    out: Annotated[Path | None, typer.Option(
-        "--out", help="Folder holding the releases (default: 'releases' beside the config).")
-    ] = None,
+    out: Annotated[Path, typer.Option(
+        "--out", help="Folder holding the releases (outside the folders of the inputs).")],
     previous: Annotated[Path | None, typer.Option(
         help="Release to compare with (default: the one OUT/latest names).")] = None,
 ) -> None:
@@ -566,7 +565,7 @@ def update(
     from coldindex.config import load_config
 
     cfg = load_config(config)
-    _run_update(cfg, out or config.parent / "releases", previous)
+    _run_update(cfg, out, previous)
 
 
 @app.command()

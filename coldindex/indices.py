@@ -148,17 +148,18 @@ def _year_casts(casts: pd.DataFrame) -> dict[int, pd.DataFrame]:
     return {int(y): g for y, g in casts.groupby("year", sort=True)}
 
 
-def _cv_rmse(xy: FloatArray, z: FloatArray, family: str, drift: FloatArray | None) -> float:
+def _cv_fit(xy: FloatArray, z: FloatArray, family: str, drift: FloatArray | None
+            ) -> tuple[float, Variogram | None]:
     try:
         vg = fit_variogram(xy, z, family, drift)
         err, _ = Kriging(xy, z, vg, drift).loo()
     except (TooFewDataError, np.linalg.LinAlgError):
-        return float("inf")
-    return float(np.mean(err**2))
+        return float("inf"), None
+    return float(np.mean(err**2)), vg
 
 
 def choose_family(samples: Sequence[tuple[FloatArray, FloatArray, FloatArray | None]]
-                  ) -> tuple[str, dict[str, float]]:
+                  ) -> tuple[str, dict[str, float], list[Variogram | None]]:
     """Choose the variogram family with the lowest pooled leave-one-out RMSE.
 
     Parameters
@@ -169,14 +170,18 @@ def choose_family(samples: Sequence[tuple[FloatArray, FloatArray, FloatArray | N
     Returns
     -------
     tuple
-        The family and the pooled RMSE of every family. [°C]
+        The family, the pooled RMSE of every family [°C], and the chosen family's
+        fitted variogram for each sample (reused, not refitted, by the caller).
     """
-    scores = {}
+    scores: dict[str, float] = {}
+    fits: dict[str, list[Variogram | None]] = {}
     for fam in FAMILIES:
-        mse = [_cv_rmse(xy, z, fam, d) for xy, z, d in samples]
+        results = [_cv_fit(xy, z, fam, d) for xy, z, d in samples]
+        mse = [r[0] for r in results]
+        fits[fam] = [r[1] for r in results]
         scores[fam] = float(np.sqrt(np.mean(mse))) if mse else float("inf")
     best = min(FAMILIES, key=lambda f: (scores[f], FAMILIES.index(f)))
-    return best, scores
+    return best, scores, fits[best]
 
 
 def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: IndexOptions,
@@ -247,6 +252,7 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
 
     family = options.variogram
     scores: dict[str, float] = {}
+    fitted: dict[int, Variogram] = {}
     if options.method == "idw":
         family = "idw"
     elif options.per_year_family:
@@ -255,7 +261,8 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         if frozen_family is not None:
             family = frozen_family
         elif usable:
-            family, scores = choose_family([arrays(by_year[yr]) for yr in usable])
+            family, scores, fits = choose_family([arrays(by_year[yr]) for yr in usable])
+            fitted = {yr: vg for yr, vg in zip(usable, fits, strict=True) if vg is not None}
         else:
             family = FAMILIES[0]
 
@@ -289,8 +296,10 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
             else:
                 fam = family
                 if options.per_year_family:
-                    fam, _ = choose_family([(xy, z, drift)])
-                vg: Variogram = fit_variogram(xy, z, fam, drift)
+                    fam, _, per_year = choose_family([(xy, z, drift)])
+                    if per_year[0] is not None:
+                        fitted[yr] = per_year[0]
+                vg: Variogram = fitted.get(yr) or fit_variogram(xy, z, fam, drift)
                 kr = Kriging(xy, z, vg, drift)
                 est, var, W = kr.predict(cell_xy, drift_cells, return_weights=options.sims > 0)
                 assert var is not None

@@ -126,3 +126,46 @@ def test_gridded_cli_equals_csv_path(files, tmp_path: Path):
     a = pd.read_csv(tmp_path / "g" / "projection.csv")
     b = pd.read_csv(tmp_path / "c" / "projection.csv")
     pd.testing.assert_frame_equal(a, b)
+
+
+def test_curvilinear_grid_units_and_errors(files, tmp_path: Path):
+    d, _ = files
+    # A 2-D lat/lon (curvilinear) model grid in degC, one model per file, monthly.
+    time = pd.date_range("2001-01-15", "2012-12-15", freq="MS") + pd.Timedelta(days=14)
+    jj, ii = np.meshgrid(np.arange(17), np.arange(15), indexing="ij")
+    lat2 = 59.0 + 0.25 * jj + 0.01 * ii
+    lon2 = 176.0 + 0.6 * ii
+    yy, mm = time.year.to_numpy(), time.month.to_numpy()
+    data = truth(lat2[None], yy[:, None, None], mm[:, None, None], 0.0)
+    ds = xr.Dataset({"tob": (("time", "j", "i"), data, {"units": "degC"})},
+                    coords={"time": time, "nav_lat": (("j", "i"), lat2),
+                            "nav_lon": (("j", "i"), lon2)},
+                    attrs={"model": "Curvy", "scenario": "low"})
+    path = tmp_path / "curvy.nc"
+    ds.to_netcdf(path)
+    tr = trajectories_from_netcdf([path], d / "fields.nc", "bottom_mean_c", None, "6-8",
+                                  "qmap", (2001, 2008))
+    assert set(tr["model"]) == {"Curvy"} and len(tr) == 12
+    bad = ds.assign(tob=ds["tob"].assign_attrs(units="furlongs"))
+    bad.to_netcdf(tmp_path / "bad_units.nc")
+    with pytest.raises(InputError, match="expected degC or K"):
+        trajectories_from_netcdf([tmp_path / "bad_units.nc"], d / "fields.nc", "bottom_mean_c",
+                                 None, "6-8", "none", None)
+    two = ds.assign(other=ds["tob"] * 2)
+    two.to_netcdf(tmp_path / "two.nc")
+    with pytest.raises(InputError, match="name the bottom-temperature variable"):
+        trajectories_from_netcdf([tmp_path / "two.nc"], d / "fields.nc", "bottom_mean_c",
+                                 None, "6-8", "none", None)
+    with pytest.raises(InputError, match="computes bottom_mean_c or below"):
+        trajectories_from_netcdf([path], d / "fields.nc", "cv_rmse_c", None, "6-8", "none",
+                                 None)
+    far = ds.assign_coords(nav_lon=ds["nav_lon"] - 40.0)
+    far.to_netcdf(tmp_path / "far.nc")
+    with pytest.raises(InputError, match="does not cover every survey cell"):
+        trajectories_from_netcdf([tmp_path / "far.nc"], d / "fields.nc", "bottom_mean_c", None,
+                                 "6-8", "none", None)
+    with pytest.raises(InputError, match="does not exist"):
+        trajectories_from_netcdf([tmp_path / "nope.nc"], d / "fields.nc", "bottom_mean_c",
+                                 None, "6-8", "none", None)
+    with pytest.raises(InputError, match="not a coldindex fields.nc"):
+        trajectories_from_netcdf([path], path, "bottom_mean_c", None, "6-8", "none", None)

@@ -133,3 +133,23 @@ def test_auto_family_is_chosen_and_frozen_family_reused(box_domain):
     again = compute_indices(qc_casts(df), box_domain, grid, opts, frozen_family="gaussian")
     assert again.family == "gaussian" and again.family_scores == {}
     assert again.table["variogram"].str.startswith("gaussian").all()
+
+
+def test_bathymetry_drift_and_per_year_family(box_domain):
+    df = synthetic_casts(years=(2001, 2002), n_side=9)
+    grid = make_grid(box_domain, 10.0)
+    lon = np.arange(176.0, 184.01, 0.25)
+    lat = np.arange(59.0, 63.01, 0.25)
+    depth = 50 + 20 * (lat[:, None] - 59) + 0 * lon[None, :]
+    opts = IndexOptions(thresholds=(0.0,), grid_km=10.0, sims=5, min_casts=20,
+                        per_year_family=True)
+    res = compute_indices(qc_casts(df), box_domain, grid, opts, (lon, lat, depth))
+    assert res.family == "per-year"
+    assert res.table["below_0c_km2"].notna().all()
+    # Temperature is linear in latitude, and so is depth: the drift explains it.
+    assert (res.table["cv_rmse_c"] < 0.2).all()
+    small = (lon[:5], lat[:5], depth[:5, :5])
+    from coldindex.errors import InputError
+
+    with pytest.raises(InputError, match="does not cover"):
+        compute_indices(qc_casts(df), box_domain, grid, opts, small)

@@ -219,7 +219,8 @@ def test_init_and_update_cli(tmp_path: Path):
     assert r.exit_code == 0 and (tmp_path / "cfg" / "coldindex.toml").is_file()
     r = runner.invoke(app, ["init", str(tmp_path / "cfg")])
     assert r.exit_code == 3 and "already exists" in r.output
-    r = runner.invoke(app, ["update", str(tmp_path / "cfg" / "coldindex.toml")])
+    r = runner.invoke(app, ["update", str(tmp_path / "cfg" / "coldindex.toml"), "--out",
+                            str(tmp_path / "rel")])
     assert r.exit_code == 2 and "inputs.casts names" in r.output and "Traceback" not in r.output
-    assert not (tmp_path / "cfg" / "releases").exists() or not any(
-        p.name.startswith("release-") for p in (tmp_path / "cfg" / "releases").iterdir())
+    assert not (tmp_path / "rel").exists() or not any(
+        p.name.startswith("release-") for p in (tmp_path / "rel").iterdir())

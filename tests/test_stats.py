@@ -129,3 +129,26 @@ def test_naive_and_adjusted_test_size_on_red_pairs():
         adjusted += fisher_z_test(r, ne)[2] < 0.1
     assert naive / 4000 > 0.25
     assert 0.03 <= adjusted / 4000 <= 0.15
+
+
+def test_edge_cases():
+    from coldindex.stats import (
+        benjamini_hochberg,
+        effective_sample_size,
+        fisher_z_test,
+        lag1_subsample_median,
+        robust_sd,
+        williams_t,
+    )
+
+    assert lag1_autocorrelation([1, 1, 1]) == 0.0
+    assert -0.99 <= lag1_bias_corrected([1, 2, 1, 2]) <= 0.99  # n <= 4: plain, clipped
+    assert lag1_subsample_median([1, 2, 3, 2]) == lag1_bias_corrected([1, 2, 3, 2])
+    assert robust_sd([1.0]) == 0.0
+    assert effective_sample_size(10, 0.99) == 2.0
+    assert all(np.isnan(v) for v in fisher_z_test(0.5, 3.0))
+    assert all(np.isnan(v) for v in williams_t(0.5, 0.1, 0.7, 3))
+    assert np.isnan(williams_t(1.0, 1.0, -1.0, 30)[0])
+    assert np.isnan(benjamini_hochberg([np.nan, np.nan])).all()
+    with pytest.raises(ValueError, match="phi needs to be in"):
+        simulate_ar1(1.0, 10, 1, np.random.default_rng(0))
