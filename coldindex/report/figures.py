@@ -241,7 +241,8 @@ def maps_figure(years: list[int], fields: np.ndarray, grid_x: np.ndarray, grid_y
                                   "#9c3d0b"])
     im = None
     for ax, yr, f, xy in zip(axes.ravel(), years, fields, casts, strict=False):
-        im = ax.pcolormesh(grid_x, grid_y, f, cmap=cmap, vmin=vmin, vmax=vmax, shading="auto")
+        im = ax.pcolormesh(grid_x, grid_y, f, cmap=cmap, vmin=vmin, vmax=vmax, shading="auto",
+                           rasterized=True)
         if np.nanmin(f) < contour < np.nanmax(f):
             ax.contour(grid_x, grid_y, f, levels=[contour], colors="black", linewidths=1.2)
         for ring in outline:
