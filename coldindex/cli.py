@@ -212,6 +212,18 @@ ValueOpt = Annotated[str, typer.Option("--value", help="The value column, e.g. b
 OutOpt = Annotated[Path, typer.Option("--out", help="Output folder.")]
 
 
+def _cuts_for(path: Path, value: str) -> Any:
+    """Read a cuts.json and refuse one made for another column."""
+    from coldindex.classify import Cuts
+    from coldindex.io.readers import read_cuts
+
+    c = Cuts.from_dict(read_cuts(path), str(path))
+    if c.column != value:
+        raise ColdindexError(f"{path} holds cut values for {c.column!r}, not {value!r}; derive "
+                             "new ones or give the matching file.")
+    return c
+
+
 def _cut_values(text: str) -> tuple[float, float]:
     try:
         low, high = (float(v) for v in text.split(","))
@@ -242,7 +254,7 @@ def classify(
 ) -> None:
     """Classify each year as cold, average or warm by fixed cut values."""
     from coldindex import classify as cl
-    from coldindex.io.readers import read_cuts, read_series
+    from coldindex.io.readers import read_series
     from coldindex.io.writers import prepare_out_dir, write_csv, write_json
 
     if colder is not None and colder not in ("lower", "higher"):
@@ -251,10 +263,7 @@ def classify(
     df = read_series(series, value, parse_column_map(columns))
     ref = cl.parse_reference(reference)
     if cuts is not None:
-        c = cl.Cuts.from_dict(read_cuts(cuts), str(cuts))
-        if c.column != value:
-            raise ColdindexError(f"{cuts} holds cut values for {c.column!r}, not {value!r}; "
-                                 "derive new ones or give the matching file.")
+        c = _cuts_for(cuts, value)
     elif cut_values is not None:
         low, high = _cut_values(cut_values)
         c = cl.Cuts(value, low, high, "given", None, colder or cl.colder_direction(value))
@@ -380,7 +389,7 @@ def skill(
     """Lagged skill of winter ice for the target, the persistence baseline, hindcast, outlook."""
     from coldindex import classify as cl
     from coldindex import skill as sk
-    from coldindex.io.readers import read_cuts, read_ice, read_series
+    from coldindex.io.readers import read_ice, read_series
     from coldindex.io.writers import prepare_out_dir, write_csv, write_figure, write_json
     from coldindex.report.figures import hindcast_figure, skill_figure
 
@@ -398,10 +407,7 @@ def skill(
     table = sk.skill_table(preds, tgt, lag_list, confidence, ref)
     hc = sk.hindcast(preds, tgt, lag_list[0], leave_out)
     if cuts is not None:
-        c = cl.Cuts.from_dict(read_cuts(cuts), str(cuts))
-        if c.column != value:
-            raise ColdindexError(f"{cuts} holds cut values for {c.column!r}, not {value!r}; "
-                                 "give the matching file.")
+        c = _cuts_for(cuts, value)
     else:
         c = cl.cuts_by_rule(tgt.index, tgt.to_numpy(), value, "tercile", ref)
     ol = sk.outlook(preds, tgt, hc, c, confidence)
@@ -477,7 +483,7 @@ def project(
     """When do cold years stop? Bias-adjusted model trajectories under fixed cut values."""
     from coldindex import classify as cl
     from coldindex import project as pj
-    from coldindex.io.readers import read_cuts, read_domain, read_series, read_trajectories
+    from coldindex.io.readers import read_domain, read_series, read_trajectories
     from coldindex.io.writers import prepare_out_dir, write_csv, write_figure
     from coldindex.report.figures import projection_figure
 
@@ -485,10 +491,7 @@ def project(
     obs = read_series(observed, value, parse_column_map(observed_columns, "--observed-columns"),
                       "--observed-columns")
     if cuts is not None:
-        c = cl.Cuts.from_dict(read_cuts(cuts), str(cuts))
-        if c.column != value:
-            raise ColdindexError(f"{cuts} holds cut values for {c.column!r}, not {value!r}; "
-                                 "give the matching file.")
+        c = _cuts_for(cuts, value)
     else:
         c = cl.cuts_by_rule(obs["year"], obs["value"], value)
     opts = pj.ProjectOptions(adjust=adjust, calibration=cl.parse_reference(calibration),

@@ -44,6 +44,7 @@ from scipy.special import expit, logit, ndtr
 
 from coldindex.classify import Cuts
 from coldindex.errors import InputError
+from coldindex.schema import numeric_column
 
 FloatArray = NDArray[np.float64]
 ADJUSTMENTS = ("none", "delta", "qmap", "qdm")
@@ -82,16 +83,7 @@ def trajectory_frame(raw: pd.DataFrame, source: str = "trajectories") -> pd.Data
     out = pd.DataFrame({"model": raw["model"].astype(str), "scenario": raw["scenario"].astype(str),
                         "member": raw["member"].astype(str) if "member" in raw else "r1"})
     for col in ("year", "value"):
-        text = raw[col].astype(str).str.strip()
-        vals = pd.to_numeric(text, errors="coerce")
-        bad = vals.isna() | (~np.isfinite(vals.fillna(0)))
-        if col == "year":
-            bad |= vals != vals.round()
-        if bad.any():
-            r = raw.loc[bad, "row"].iloc[0]
-            raise InputError(f"{source}, row {r}: column {col!r} needs a number, got: "
-                             f"{raw.loc[bad, col].iloc[0]!r}.")
-        out[col] = vals
+        out[col] = numeric_column(raw, col, source, whole=col == "year")
     out["year"] = out["year"].astype(int)
     keys = ["model", "scenario", "member"]
     dup = out.duplicated([*keys, "year"], keep=False)

@@ -14,6 +14,7 @@ from __future__ import annotations
 import sys
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -500,6 +501,48 @@ def render_outputs_md(tables: Iterable[Table] | None = None) -> str:
 
 if __name__ == "__main__":  # pragma: no cover
     sys.stdout.write(render_outputs_md())
+
+
+def numeric_column(raw: Any, col: str, source: str, *, whole: bool = False,
+                   allow_blank: bool = False) -> Any:
+    """Parse a string column (with a ``row`` column beside it) as numbers, or refuse it.
+
+    Parameters
+    ----------
+    raw
+        Frame of strings as read, with ``row`` (1-based data row).
+    col
+        Column to parse.
+    source
+        File name for the message.
+    whole
+        Require whole numbers (years, months).
+    allow_blank
+        Let blanks through as NaN.
+
+    Returns
+    -------
+    pandas.Series
+        The numbers (float).
+    """
+    import pandas as pd
+
+    from coldindex.errors import InputError
+
+    text = raw[col].astype(str).str.strip()
+    vals = pd.to_numeric(text.where(text != ""), errors="coerce")
+    blank = text.eq("")
+    bad = (vals.isna() & ~blank) | ~np.isfinite(vals.fillna(0.0))
+    if not allow_blank:
+        bad |= blank
+    if whole:
+        bad |= vals.notna() & (vals != vals.round())
+    if bad.any():
+        r = raw.loc[bad, "row"].iloc[0]
+        raise InputError(f"{source}, row {r}: column {col!r} needs "
+                         f"{'a whole number' if whole else 'a number'}, got: "
+                         f"{raw.loc[bad, col].iloc[0]!r}.")
+    return vals.astype(float)
 
 
 def threshold_from_column(column: str) -> float | None:

@@ -22,6 +22,7 @@ from scipy.special import ndtr, ndtri
 
 from coldindex.classify import Cuts
 from coldindex.errors import InputError, TooFewDataError
+from coldindex.schema import numeric_column
 from coldindex.stats import (
     benjamini_hochberg,
     effective_sample_size_pair,
@@ -62,16 +63,8 @@ def ice_frame(raw: pd.DataFrame, source: str = "ice file") -> pd.DataFrame:
     """
     out = pd.DataFrame({"row": raw["row"]})
     for col in ("year", "month", "ice"):
-        text = raw[col].astype(str).str.strip()
-        vals = pd.to_numeric(text.where(text != ""), errors="coerce")
-        bad = vals.isna() & text.ne("")
-        if col != "ice":
-            bad |= vals.isna() | (vals != vals.round())
-        if bad.any():
-            r = raw.loc[bad, "row"].iloc[0]
-            raise InputError(f"{source}, row {r}: column {col!r} needs a number, got: "
-                             f"{raw.loc[bad, col].iloc[0]!r}.")
-        out[col] = vals
+        out[col] = numeric_column(raw, col, source, whole=col != "ice",
+                                  allow_blank=col == "ice")
     out["year"] = out["year"].astype(int)
     out["month"] = out["month"].astype(int)
     bad = (out["month"] < 1) | (out["month"] > 12)

@@ -42,7 +42,7 @@ def test_winter_labelled_by_following_summer():
     ([(2000, 13, 1.0)], "outside 1..12"),
     ([(2000, 1, -1.0)], "negative ice"),
     ([(2000, 1, 1.0), (2000, 1, 2.0)], "more than once"),
-    ([(2000, "jan", 1.0)], "needs a number"),
+    ([(2000, "jan", 1.0)], "needs a whole number"),
 ])
 def test_ice_validation(rows, message):
     with pytest.raises(InputError, match=message):
