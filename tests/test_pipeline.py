@@ -224,3 +224,15 @@ def test_init_and_update_cli(tmp_path: Path):
     assert r.exit_code == 2 and "inputs.casts names" in r.output and "Traceback" not in r.output
     assert not (tmp_path / "rel").exists() or not any(
         p.name.startswith("release-") for p in (tmp_path / "rel").iterdir())
+
+
+def test_incompatible_previous_release_is_refused(tmp_path: Path):
+    cfg_path = make_inputs(tmp_path / "inputs")
+    old = tmp_path / "old-release"
+    old.mkdir()
+    (old / "provenance.json").write_text(json.dumps({"version": "0.0.1", "release_format": 0}))
+    with pytest.raises(Exception, match="incompatible release format"):
+        run_update(load_config(cfg_path), tmp_path / "out", previous=old)
+    assert not any((tmp_path / "out").glob("release-*"))
+    with pytest.raises(Exception, match="not a coldindex release"):
+        run_update(load_config(cfg_path), tmp_path / "out", previous=tmp_path)
