@@ -21,9 +21,10 @@ import pandas as pd
 from coldindex._version import __version__
 from coldindex.classify import reference_values
 from coldindex.config import Config, IndexOptions, ShiftsConfig
-from coldindex.domain import Domain, derive_domain, make_grid
+from coldindex.domain import Domain, Grid, derive_domain, make_grid
 from coldindex.errors import InputError
 from coldindex.indices import IndexResult, compute_indices
+from coldindex.interpolate import FAMILIES
 from coldindex.io import readers, writers
 from coldindex.project import ProjectionResult
 from coldindex.qc import QCResult, run_qc, year_hashes
@@ -60,6 +61,28 @@ def _frozen(out: Path | None) -> dict:  # an index output folder or a release
     except json.JSONDecodeError:
         raise InputError(f"{out / FROZEN_NAME} is damaged; delete it to choose the domain and "
                          "variogram family afresh (past values may move).") from None
+
+
+def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: Grid,
+                         options: IndexOptions) -> tuple[list[Path], dict]:
+    """Write qc.csv, indices.csv, fields.nc, domain.geojson and frozen.json into ``out``."""
+    assert check.domain is not None
+    fields = writers.fields_dataset(result.years, result.estimate, result.sd,
+                                    options.thresholds, grid, check.domain, result.casts)
+    frozen = {"projection": check.domain.crs.srs, "grid_km": options.grid_km,
+              "domain_source": check.domain_source,
+              "variogram_family": result.family if result.family in FAMILIES else None,
+              "family_scores_rmse_c": result.family_scores or None}
+    written = [
+        writers.write_csv(check.qc.table.drop(columns=["doy"]).reindex(
+            columns=["row", "year", "station", "lat", "lon", "bottom_c", "flag", "detail"]),
+            out / "qc.csv"),
+        writers.write_csv(result.table, out / "indices.csv"),
+        writers.write_netcdf(fields, out / "fields.nc"),
+        writers.write_json(check.domain.to_geojson(), out / DOMAIN_NAME),
+        writers.write_json(frozen, out / FROZEN_NAME),
+    ]
+    return written, frozen
 
 
 def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
@@ -162,22 +185,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
         notes.append(f"circulant embedding clipped {result.clipped_share:.2e} of the "
                      "eigenvalue mass")
 
-    fields = writers.fields_dataset(result.years, result.estimate, result.sd,
-                                    options.thresholds, grid, check.domain, result.casts)
-    written = [
-        writers.write_csv(result.table, out / "indices.csv"),
-        writers.write_netcdf(fields, out / "fields.nc"),
-        writers.write_csv(check.qc.table.drop(columns=["doy"]).reindex(
-            columns=["row", "year", "station", "lat", "lon", "bottom_c", "flag", "detail"]),
-            out / "qc.csv"),
-        writers.write_json(check.domain.to_geojson(), out / DOMAIN_NAME),
-    ]
-    frozen_out = {"projection": check.domain.crs.srs, "grid_km": options.grid_km,
-                  "domain_source": check.domain_source,
-                  "variogram_family": result.family if result.family in
-                  ("exponential", "spherical", "matern", "gaussian") else None,
-                  "family_scores_rmse_c": result.family_scores or None}
-    written.append(writers.write_json(frozen_out, out / FROZEN_NAME))
+    written, frozen_out = _write_index_outputs(out, check, result, grid, options)
     inputs = {"casts": {"path": str(casts_path), "sha256": writers.sha256_file(casts_path)}}
     for name, p in (("domain", domain_path), ("bathymetry", bathymetry_path)):
         if p is not None:
@@ -446,7 +454,6 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     assert check.domain is not None
     if check.qc.casts.empty:
         raise InputError(f"{cfg.inputs.casts} has no usable casts; run coldindex check.")
-    written.append(writers.write_csv(check.qc.table.drop(columns=["doy"]), rel / "qc.csv"))
 
     _stage(progress, "index")
     frozen_prev = _frozen(prev)
@@ -457,16 +464,8 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     bathy = readers.read_bathymetry(cfg.inputs.bathymetry) if cfg.inputs.bathymetry else None
     res = compute_indices(check.qc.casts, check.domain, grid, opts, bathy, frozen_family=family)
     indices = res.table
-    written.append(writers.write_csv(indices, rel / "indices.csv"))
-    written.append(writers.write_netcdf(writers.fields_dataset(
-        res.years, res.estimate, res.sd, opts.thresholds, grid, check.domain, res.casts),
-        rel / "fields.nc"))
-    written.append(writers.write_json(check.domain.to_geojson(), rel / DOMAIN_NAME))
-    frozen = {"projection": check.domain.crs.srs, "grid_km": opts.grid_km,
-              "domain_source": "given" if cfg.inputs.domain else "derived or frozen",
-              "variogram_family": res.family if res.family in
-              ("exponential", "spherical", "matern", "gaussian") else None}
-    written.append(writers.write_json(frozen, rel / FROZEN_NAME))
+    index_files, frozen = _write_index_outputs(rel, check, res, grid, opts)
+    written += index_files
     series = {c: pd.Series(indices[c].to_numpy(float), index=indices["year"].to_numpy())
               for c in indices.columns if c not in ("year", "variogram", "note")}
 
