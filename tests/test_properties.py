@@ -100,5 +100,7 @@ def test_order_duplicates_and_longitude_change_nothing(box_domain, seed, dup, sh
         [wrap_lon(c[:, 0] + shift), c[:, 1]])))
     rot = compute_indices(run_qc(_raw(moved)).casts, dom, make_grid(dom, 15.0), opts).table
     cols = ["bottom_mean_c", "below_0c_km2", "coverage"]
+    # Shifted longitudes differ in their last bits and the variogram fit (an optimiser)
+    # carries that to ~1e-7: 1e-6 degC absolute, 1e-5 relative.
     np.testing.assert_allclose(rot[cols].to_numpy(float), base[cols].to_numpy(float),
-                               rtol=1e-6)
+                               rtol=1e-5, atol=1e-6)
