@@ -2,14 +2,21 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import settings
 from shapely.geometry import Polygon
 
 from coldindex.domain import domain_from_polygon
+
+# CI runs the property tests with a fixed derivation of examples, so a green run repeats.
+settings.register_profile("ci", derandomize=True, print_blob=True)
+if os.environ.get("CI"):
+    settings.load_profile("ci")
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_inputs"
