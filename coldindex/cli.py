@@ -350,17 +350,6 @@ def shifts(
         out_console.print(f"Wrote {p}")
 
 
-def _lags(text: str) -> list[int]:
-    try:
-        if "-" in text:
-            a, b = (int(v) for v in text.split("-"))
-            return list(range(a, b + 1))
-        return [int(v) for v in text.split(",")]
-    except ValueError:
-        raise ColdindexError(f"--lags needs a span like 0-2 or a list like 0,1, got: "
-                             f"{text!r}.") from None
-
-
 @app.command()
 @_guard
 def skill(
@@ -403,7 +392,7 @@ def skill(
     tgt = pd.Series(series["value"].to_numpy(), index=series["year"].to_numpy()).dropna()
     ref = cl.parse_reference(reference)
     preds = sk.winter_predictors(ice_df, sk.parse_months(months), winter)
-    lag_list = _lags(lags)
+    lag_list = sk.parse_lags(lags)
     table = sk.skill_table(preds, tgt, lag_list, confidence, ref)
     hc = sk.hindcast(preds, tgt, lag_list[0], leave_out)
     if cuts is not None:

@@ -514,8 +514,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
         ice = sk.ice_frame(readers.read_ice(cfg.inputs.ice, cfg.ice_columns), str(cfg.inputs.ice))
         preds = sk.winter_predictors(ice, sk.parse_months(kc.months), kc.winter)
         tgt = series[kc.column].dropna()
-        lag_list = [int(v) for v in range(int(kc.lags.split("-")[0]),
-                                          int(kc.lags.split("-")[-1]) + 1)]
+        lag_list = sk.parse_lags(kc.lags)
         skill_tab = sk.skill_table(preds, tgt, lag_list, kc.confidence)
         hc = sk.hindcast(preds, tgt, lag_list[0], kc.leave_out)
         kcuts = cuts.get(kc.column) or cl.cuts_by_rule(tgt.index, tgt.to_numpy(), kc.column)

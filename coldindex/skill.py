@@ -53,6 +53,22 @@ def parse_months(text: str) -> list[int]:
     return months
 
 
+def parse_lags(text: str) -> list[int]:
+    """Parse lags ``A-B`` (inclusive) or a list ``0,1,3`` into sorted whole years >= 0."""
+    try:
+        if "-" in text:
+            a, b = (int(v) for v in text.split("-"))
+            lags = list(range(a, b + 1))
+        else:
+            lags = sorted({int(v) for v in text.split(",")})
+    except ValueError:
+        raise InputError(f"--lags needs a span like 0-2 or a list like 0,1, got: "
+                         f"{text!r}.") from None
+    if not lags or lags[0] < 0:
+        raise InputError(f"--lags needs whole years >= 0, got: {text!r}.")
+    return lags
+
+
 def ice_frame(raw: pd.DataFrame, source: str = "ice file") -> pd.DataFrame:
     """Validate an ice table read as strings (``row``, ``year``, ``month``, ``ice``).
 

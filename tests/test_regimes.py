@@ -103,6 +103,18 @@ def test_prewhitening_reduces_red_noise():
     assert 0.3 < rho4 < 0.9
 
 
+def series_with_a_significant_shift(X: np.ndarray) -> dict[str, int]:
+    """Per method, how many series report any shift with p < 0.1 (99 replicates, default
+    settings, seed = series index)."""
+    hits = {"stars": 0, "pelt": 0}
+    for i, x in enumerate(X):
+        res = detect_shifts(YEARS, x, opts=ShiftOptions(boot=99, seed=i))
+        for m in hits:
+            p = res.shifts.loc[res.shifts["method"] == m, "p_value"]
+            hits[m] += bool((p < 0.1).any())
+    return hits
+
+
 def test_bootstrap_size_on_red_noise():
     # Size of the whole-detection bootstrap (fixed seed, default settings): 200 AR(1) null
     # series (rho = 0.5, n = 50), 99 bootstrap replicates each. The share reporting any
@@ -111,12 +123,7 @@ def test_bootstrap_size_on_red_noise():
     X = simulate_ar1(0.5, 50, 200, np.random.default_rng(2026))
     plain = np.mean([len(stars(x)[0]) > 0 for x in X])
     assert plain > 0.5
-    hits = {"stars": 0, "pelt": 0}
-    for i, x in enumerate(X):
-        res = detect_shifts(YEARS, x, opts=ShiftOptions(boot=99, seed=i))
-        for m in hits:
-            p = res.shifts.loc[res.shifts["method"] == m, "p_value"]
-            hits[m] += bool((p < 0.1).any())
+    hits = series_with_a_significant_shift(X)
     for m, h in hits.items():
         assert 0.03 <= h / len(X) <= 0.17, (m, h)
 
@@ -127,10 +134,5 @@ def test_bootstrap_power_grows_with_the_step():
     # series AR(1) estimate made it about 1 %, below the size); 100 series, 99 replicates.
     X = simulate_ar1(0.5, 50, 100, np.random.default_rng(77))
     X[:, 25:] += 3.0
-    hits = {"stars": 0, "pelt": 0}
-    for i, x in enumerate(X):
-        res = detect_shifts(YEARS, x, opts=ShiftOptions(boot=99, seed=i))
-        for m in hits:
-            p = res.shifts.loc[res.shifts["method"] == m, "p_value"]
-            hits[m] += bool((p < 0.1).any())
+    hits = series_with_a_significant_shift(X)
     assert hits["stars"] >= 30 and hits["pelt"] >= 30, hits
