@@ -358,11 +358,18 @@ def skill(
                                          "indices.csv.")],
     value: ValueOpt,
     out: OutOpt,
-    months: Annotated[str, typer.Option(help="Winter months, e.g. 11-4 (wraps over the new "
-                                        "year).")] = "11-4",
+    months: Annotated[str, typer.Option(help="Winter months in order, e.g. 11-4 (wraps over "
+                                        "the new year) or 5-10.")] = "11-4",
+    survey_month: Annotated[int | None, typer.Option(
+        help="Month the survey starts (1-12); default: the month of the target's median "
+             "survey day (its median_doy column). A winter is labelled with the year of the "
+             "first survey that starts after the winter's last month, and lag 0 pairs it "
+             "with that survey: a July survey with --months 11-4 puts Nov-Dec of Y in winter "
+             "Y+1; a January survey with --months 5-10 puts May-Oct of Y in winter Y+1.",
+        min=1, max=12)] = None,
     winter: Annotated[str, typer.Option(help="Winter aggregate: mean or max.")] = "mean",
-    lags: Annotated[str, typer.Option(help="Lags in years, e.g. 0-2 (0 = the summer after "
-                                      "the winter).")] = "0-2",
+    lags: Annotated[str, typer.Option(help="Lags in years, e.g. 0-2 (0 = the first survey "
+                                      "after the winter).")] = "0-2",
     confidence: Annotated[float, typer.Option(help="Confidence of intervals.")] = 0.9,
     reference: Annotated[str | None, typer.Option(
         help="Reference period A-B for anomalies and cut values.")] = None,
@@ -378,6 +385,7 @@ def skill(
     """Lagged skill of winter ice for the target, the persistence baseline, hindcast, outlook."""
     from coldindex import classify as cl
     from coldindex import skill as sk
+    from coldindex.errors import InputError
     from coldindex.io.readers import read_ice, read_series
     from coldindex.io.writers import prepare_out_dir, write_csv, write_figure, write_json
     from coldindex.report.figures import hindcast_figure, skill_figure
@@ -391,7 +399,17 @@ def skill(
                          "--target-columns")
     tgt = pd.Series(series["value"].to_numpy(), index=series["year"].to_numpy()).dropna()
     ref = cl.parse_reference(reference)
-    preds = sk.winter_predictors(ice_df, sk.parse_months(months), winter)
+    doy: pd.Series | None = None
+    if survey_month is None:
+        try:
+            doy = read_series(target, "median_doy", parse_column_map(
+                target_columns, "--target-columns"), "--target-columns")["value"]
+        except InputError:
+            doy = None  # survey_month() says what to do
+    survey = sk.survey_month(survey_month, doy)
+    out_console.print(f"Winters labelled by the first survey after them (survey month {survey}"
+                      f"{'' if survey_month else ', from the median survey day'}).")
+    preds = sk.winter_predictors(ice_df, sk.parse_months(months), winter, survey=survey)
     lag_list = sk.parse_lags(lags)
     table = sk.skill_table(preds, tgt, lag_list, confidence, ref)
     hc = sk.hindcast(preds, tgt, lag_list[0], leave_out)

@@ -134,12 +134,16 @@ class SkillConfig:
 
     column: str = "bottom_mean_c"
     months: str = "11-4"
+    survey_month: int = 0
     winter: str = "mean"
     lags: str = "0-2"
     confidence: float = 0.9
     leave_out: int = 3
 
     def __post_init__(self) -> None:
+        _check(0 <= self.survey_month <= 12, "skill.survey_month",
+               "a month in 1..12 (or 0: the month of the target's median survey day)",
+               self.survey_month)
         _check(self.winter in ("mean", "max"), "skill.winter", "mean or max", self.winter)
         _check(0 < self.confidence < 1, "skill.confidence", "a value in (0, 1)",
                self.confidence)
@@ -436,7 +440,11 @@ boot = 999
 
 [skill]
 column = "bottom_mean_c"
-months = "11-4"           # winter months; November and December belong to the next year's winter
+months = "11-4"           # winter months in order; a span may wrap over the new year
+survey_month = 0          # month the survey starts, 1..12; 0 = month of the median survey day
+# A winter is labelled with the year of the first survey that starts after its last month;
+# lag 0 pairs it with that survey (July survey, months 11-4: Nov-Dec of Y -> winter Y+1;
+# January survey, months 5-10: May-Oct of Y -> winter Y+1).
 winter = "mean"           # mean or max
 lags = "0-2"
 leave_out = 3

@@ -1,23 +1,30 @@
-"""The invented scenario: a subarctic shelf straddling 180°, 44 survey years.
+"""The invented scenario: the Skelvarra Shelf, across 180° in the Southern Ocean.
 
-Everything here is invented: the shelf, its station names, its ice, its models.
-``python -m coldindex.demo DIR`` writes the same bytes every time in the same
-environment; ``sample_inputs/`` in the repository is its committed output.
+Everything here is invented: the shelf, its outline and depths, its transects
+and stations, its ice, its models and scenarios. ``python -m coldindex.demo DIR``
+writes the same bytes every time in the same environment; ``sample_inputs/`` in
+the repository is its committed output.
 
 The physical story
 ------------------
-* Winter sea-ice mass (November to May, labelled by the following summer) has
-  a year-to-year AR(1) anomaly, a slow decline and a step loss after 2001.
-* Heavy ice leaves a cold bottom pool on the middle shelf the next summer:
-  the bottom temperature anomaly there scales with the winter's ice anomaly.
-* Bottom water warms with depth toward the outer shelf (bathymetry written as
-  NetCDF), warms slowly through the record and steps up after 2001 with the ice.
-* Spatially correlated noise (exponential, length 90 km) and sensor noise on top;
+* The shelf lies at about 60.5-63.6° S across 180°. Stations sit on numbered
+  transects (``T07-S12``: transect 7, station 12), transects 30 km apart and
+  stations 25 km apart along them.
+* Winter sea ice (May to October) has a year-to-year AR(1) anomaly, a slow
+  decline and a step loss from the winter before the 2010 survey on.
+* The survey runs from mid January for about six weeks, transect by transect
+  from west to east; it follows the winter of the year before, so the ice of
+  winter W (May-October of W - 1) meets the survey of January W (lag 0).
+* Heavy ice leaves a cold bottom pool over the shallow central bank; the bottom
+  temperature anomaly there scales with the winter's ice anomaly.
+* Bottom water warms with depth toward the shelf's edge and down a trough from
+  the south-east (bathymetry written as NetCDF), warms slowly through the record
+  and steps up from 2010 with the ice.
+* Spatially correlated noise (exponential, length 80 km) and sensor noise on top;
   temperatures approach the freezing point smoothly, never below it.
-* The survey runs east to west over about eight weeks from early June.
-* One year (1987) sampled only the eastern half of the shelf (low coverage).
+* In 1997 only the western half of the shelf was sampled (low coverage).
 * Planted faults: a blank, a sentinel, an identical and a conflicting duplicate,
-  a cast outside the domain, and a mistyped latitude.
+  a cast outside the domain, and a latitude with its sign lost.
 """
 
 from __future__ import annotations
@@ -36,18 +43,25 @@ from coldindex.config import TEMPLATE
 from coldindex.domain import Domain, domain_from_polygon, wrap_lon
 from coldindex.io.writers import atomic_path, write_bytes, write_csv, write_json
 
-SEED = 4242
-FIRST_YEAR, LAST_YEAR = 1982, 2025
-STEP_YEAR = 2002  # first summer of the warm regime
-SPACING_KM = 37.04  # 20 nautical miles
-SHELF = [  # lon, lat of the invented shelf's outline (crosses 180°)
-    (171.0, 59.0), (174.5, 58.2), (179.0, 57.8), (-176.5, 58.0), (-172.5, 58.6),
-    (-170.0, 59.8), (-170.5, 61.5), (-172.5, 62.6), (-176.0, 63.2), (-179.5, 63.0),
-    (176.5, 62.4), (173.0, 61.5), (171.0, 60.3), (171.0, 59.0),
+SEED = 11
+NAME = "Skelvarra Shelf"
+FIRST_YEAR, LAST_YEAR = 1991, 2026  # survey years (January-February)
+STEP_YEAR = 2010  # first survey of the warm regime
+LOW_COVERAGE_YEAR = 1997
+TRANSECT_KM, STATION_KM = 30.0, 25.0  # transect spacing, station spacing along a transect
+SURVEY_DAYS = 42  # about six weeks
+ICE_DECLINE = 0.008  # slow loss of winter ice, anomaly units per year
+WARMING = 0.012  # slow warming of the bottom water, degC per year
+STEP_WARMING = 1.2  # bottom-water step at STEP_YEAR, degC
+ICE_NOISE = 0.7  # year-to-year innovation of the winter ice anomaly (AR(1), 0.5)
+SHELF = [  # lon, lat of the invented shelf's outline, counter-clockwise (crosses 180°)
+    (175.7, -61.5), (176.4, -62.5), (178.0, -63.2), (-179.6, -63.55), (-177.0, -63.4),
+    (-175.2, -62.8), (-174.5, -61.9), (-175.3, -61.0), (-177.4, -60.55), (-179.8, -60.45),
+    (178.3, -60.6), (176.6, -60.95), (175.7, -61.5),
 ]
-MODELS = ("Aster", "Borea", "Cirrus", "Dunlin")
-SCENARIOS = {"moderate": 0.012, "high": 0.032}  # warming after 2025, degC per year
-
+ICE_MONTHS = {4: 0.6, 5: 1.5, 6: 2.7, 7: 3.8, 8: 4.6, 9: 5.0, 10: 4.4, 11: 2.9}  # Gt, invented
+MODELS = ("Askel", "Brimvar", "Corrin", "Delvan")
+SCENARIOS = {"gentle": 0.011, "steep": 0.03}  # warming after the last survey, degC per year
 
 
 def _polygon() -> Polygon:
@@ -55,15 +69,16 @@ def _polygon() -> Polygon:
 
 
 def _depth(x: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """Invented bathymetry in the shelf's plane [km]: deepens to the south-west. [m]"""
-    s = (-0.55 * x - 0.85 * y) / 600.0
-    bumps = 12 * np.sin(x / 90.0) * np.cos(y / 70.0)
-    return np.clip(70.0 + 80.0 * s + bumps, 25.0, 220.0)
+    """Invented bathymetry in the shelf's plane [km]: a central bank, a south-east trough. [m]"""
+    bank = ((x + 40.0) / 230.0) ** 2 + ((y - 15.0) / 150.0) ** 2
+    trough = 75.0 * np.exp(-(((x - 0.9 * y - 170.0) / 50.0) ** 2)) * (y < 60.0)
+    bumps = 9.0 * np.sin(x / 65.0) * np.cos(y / 50.0)
+    return np.clip(58.0 + 120.0 * bank + trough + bumps, 30.0, 260.0)
 
 
 def _cold_pool_shape(x: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """Where the ice leaves its cold water: a broad patch on the middle shelf. [0..1]"""
-    return np.exp(-(((x - 60.0) / 330.0) ** 2 + ((y - 40.0) / 190.0) ** 2))
+    """Where the ice leaves its cold water: over the central bank. [0..1]"""
+    return np.exp(-(((x + 30.0) / 240.0) ** 2 + ((y - 10.0) / 140.0) ** 2))
 
 
 def _random_field(rng: np.random.Generator, x: np.ndarray, y: np.ndarray,
@@ -81,23 +96,22 @@ def _random_field(rng: np.random.Generator, x: np.ndarray, y: np.ndarray,
 
 
 def _ice_series(rng: np.random.Generator) -> tuple[pd.DataFrame, dict[int, float]]:
-    years = np.arange(FIRST_YEAR - 1, LAST_YEAR + 2)
-    anomaly = np.zeros(len(years))
-    for i in range(1, len(years)):
-        anomaly[i] = 0.5 * anomaly[i - 1] + rng.normal(0, 0.85)
-    anomaly += -0.015 * (years - 2000) - 0.7 * (years >= STEP_YEAR)
-    winter = dict(zip(years.tolist(), anomaly.tolist(), strict=True))
-    clim = {11: 0.8, 12: 2.6, 1: 4.4, 2: 5.6, 3: 6.1, 4: 5.5, 5: 3.2}  # invented, Gt
+    """Monthly ice of calendar years, and each winter's anomaly by winter label.
+
+    Winter W is May-October of calendar year W - 1, the winter before the survey
+    of January W. The newest winter (before the next, unobserved survey) is complete.
+    """
+    labels = np.arange(FIRST_YEAR - 1, LAST_YEAR + 2)
+    anomaly = np.zeros(len(labels))
+    for i in range(1, len(labels)):
+        anomaly[i] = 0.5 * anomaly[i - 1] + rng.normal(0, ICE_NOISE)
+    anomaly += -ICE_DECLINE * (labels - 2008) - 0.7 * (labels >= STEP_YEAR)
+    winter = dict(zip(labels.tolist(), anomaly.tolist(), strict=True))
     rows = []
-    for label in years[1:]:  # winter labelled by the summer that follows
-        if label > LAST_YEAR + 1:
-            break
-        for month, base in clim.items():
-            cal_year = label - 1 if month >= 11 else label
-            if label == LAST_YEAR + 1 and month > 3:
-                continue  # the newest winter is only known to March
+    for label in labels[1:]:
+        for month, base in ICE_MONTHS.items():
             value = base * (1.0 + 0.22 * winter[int(label)] + rng.normal(0, 0.05))
-            rows.append((int(cal_year), month, round(max(value, 0.0), 3)))
+            rows.append((int(label) - 1, month, round(max(value, 0.0), 3)))
     ice = pd.DataFrame(rows, columns=["year", "month", "ice"])
     return ice.sort_values(["year", "month"]).reset_index(drop=True), winter
 
@@ -126,51 +140,60 @@ def make_scenario(seed: int = SEED) -> Scenario:
     -------
     Scenario
         Casts, ice and trajectory frames, domain GeoJSON, bathymetry Dataset and
-        the winter ice anomaly that drove each summer.
+        the winter ice anomaly that drove each survey (by winter label).
     """
     rng = np.random.default_rng(np.random.SeedSequence([seed]))
     dom = domain_from_polygon(_polygon())
     minx, miny, maxx, maxy = dom.polygon_xy.bounds
-    inner = dom.polygon_xy.buffer(-8.0)
-    gx = np.arange(np.ceil(minx / SPACING_KM), np.floor(maxx / SPACING_KM) + 1) * SPACING_KM
-    gy = np.arange(np.ceil(miny / SPACING_KM), np.floor(maxy / SPACING_KM) + 1) * SPACING_KM
-    xs, ys, names = [], [], []
-    for j, yv in enumerate(gy[::-1]):
-        for i, xv in enumerate(gx):
-            if shapely.intersects_xy(inner, xv, yv):
-                xs.append(xv)
-                ys.append(yv)
-                names.append(f"{chr(65 + j // 26)}{chr(65 + j % 26)}{i:02d}")
+    inner = dom.polygon_xy.buffer(-6.0)
+    gx = np.arange(np.ceil(minx / TRANSECT_KM), np.floor(maxx / TRANSECT_KM) + 1) * TRANSECT_KM
+    gy = np.arange(np.ceil(miny / STATION_KM), np.floor(maxy / STATION_KM) + 1) * STATION_KM
+    xs, ys, names, order = [], [], [], []
+    transect = 0
+    for xv in gx:  # transects numbered west to east, stations north to south
+        on = [yv for yv in gy[::-1] if shapely.intersects_xy(inner, xv, yv)]
+        if not on:
+            continue
+        transect += 1
+        for k, yv in enumerate(on):
+            xs.append(xv)
+            ys.append(yv)
+            names.append(f"T{transect:02d}-S{k + 1:02d}")
+            # the ship zigzags: north to south on odd transects, back north on even ones
+            order.append(transect - 1 + (k + 0.5) / len(on) if transect % 2 else
+                         transect - (k + 0.5) / len(on))
     sx, sy = np.array(xs), np.array(ys)
     slon, slat = dom.to_lonlat(sx, sy)
     depth = _depth(sx, sy)
     pool = _cold_pool_shape(sx, sy)
+    progress = np.array(order) / transect  # 0..1 through the survey
     ice, winter = _ice_series(rng)
 
     rows = []
     for year in range(FIRST_YEAR, LAST_YEAR + 1):
         r = np.random.default_rng(np.random.SeedSequence([seed, year]))
         take = r.uniform(size=len(sx)) > 0.03
-        if year == 1987:
-            take &= sx > np.median(sx)
-        warm = 0.02 * (year - FIRST_YEAR) + 0.8 * (year >= STEP_YEAR)
-        t = (0.3 + 0.022 * (depth - 70.0) + warm - 1.5 * winter[year] * pool
-             - 0.9 * pool + 0.5 * _random_field(r, sx, sy, 90.0)
+        if year == LOW_COVERAGE_YEAR:
+            take &= sx < np.median(sx)
+        warm = WARMING * (year - FIRST_YEAR) + STEP_WARMING * (year >= STEP_YEAR)
+        t = (0.2 + 0.018 * (depth - 90.0) + warm - 1.5 * winter[year] * pool
+             - 0.9 * pool + 0.5 * _random_field(r, sx, sy, 80.0)
              + r.normal(0.0, 0.15, len(sx)))
-        floor = -1.75
+        floor = -1.85
         t = floor + np.logaddexp(0.0, 4.0 * (t - floor)) / 4.0
-        start = pd.Timestamp(year=year, month=6, day=1) + pd.Timedelta(days=int(r.integers(-5, 6)))
-        days = 56.0 * (maxx - sx) / (maxx - minx) + r.uniform(0, 2, len(sx))
-        for k in np.flatnonzero(take):
-            date = start + pd.Timedelta(days=float(days[k]))
-            rows.append((year, names[k], date.strftime("%Y-%m-%d"), round(float(slat[k]), 4),
-                         round(float(wrap_lon(slon[k])), 4),
-                         round(float(depth[k] + r.normal(0, 2)), 1), round(float(t[k]), 2)))
+        start = pd.Timestamp(year=year, month=1, day=14) + pd.Timedelta(
+            days=int(r.integers(-4, 5)))
+        days = SURVEY_DAYS * progress + r.uniform(0, 1, len(sx))
+        for i in np.flatnonzero(take):
+            date = start + pd.Timedelta(days=float(days[i]))
+            rows.append((year, names[i], date.strftime("%Y-%m-%d"), round(float(slat[i]), 4),
+                         round(float(wrap_lon(slon[i])), 4),
+                         round(float(depth[i] + r.normal(0, 2)), 1), round(float(t[i]), 2)))
     casts = pd.DataFrame(rows, columns=["year", "station", "date", "lat", "lon", "depth_m",
                                         "bottom_c"])
     casts = _plant_faults(casts)
 
-    traj = _trajectories(rng, casts)
+    traj = _trajectories(seed)
     bathy = _bathymetry_dataset(dom)
     return Scenario(casts=casts, ice=ice, trajectories=traj, domain=_domain_geojson(),
                     bathymetry=bathy, winter_anomaly=winter)
@@ -180,46 +203,45 @@ def _plant_faults(casts: pd.DataFrame) -> pd.DataFrame:
     c = casts.copy()
     c["bottom_c"] = c["bottom_c"].map(lambda v: f"{v:.2f}")
 
-    def first(year: int) -> int:
-        return int(c.index[c["year"] == year][10])
+    def pick(year: int) -> int:
+        return int(c.index[c["year"] == year][12])
 
-    c.loc[first(2010), "bottom_c"] = ""  # a blank
-    c.loc[first(2015), "bottom_c"] = "-9999"  # a sentinel
-    c.loc[first(2023), "lat"] = float(c.loc[first(2023), "lat"]) * 10  # mistyped latitude
-    ident = c.loc[[first(2018)]]
-    conflict = c.loc[[first(2020)]].copy()
+    c.loc[pick(2003), "bottom_c"] = ""  # a blank
+    c.loc[pick(2008), "bottom_c"] = "-9999"  # a sentinel
+    c.loc[pick(2021), "lat"] = -float(c.loc[pick(2021), "lat"])  # the latitude's sign lost
+    ident = c.loc[[pick(2012)]]
+    conflict = c.loc[[pick(2016)]].copy()
     conflict["bottom_c"] = f"{float(conflict['bottom_c'].iloc[0]) + 1.3:.2f}"
-    outside = c.loc[[first(2022)]].copy()
-    outside["station"] = "XX99"
-    outside["lat"] = 56.9  # south of the shelf
+    outside = c.loc[[pick(2019)]].copy()
+    outside["station"] = "T00-S00"
+    outside["lat"] = -59.6  # north of the shelf
     return pd.concat([c, ident, conflict, outside]).sort_values(["year", "date", "station"],
                                                                 kind="stable")
 
 
-def _trajectories(rng: np.random.Generator, casts: pd.DataFrame) -> pd.DataFrame:
+def _trajectories(seed: int) -> pd.DataFrame:
     years = np.arange(FIRST_YEAR, 2101)
     rows = []
     for mi, model in enumerate(MODELS):
-        bias = rng.normal(0.3, 0.5)
+        bias = np.random.default_rng(np.random.SeedSequence([seed, 900, mi])).normal(0.3, 0.5)
         members = ("r1", "r2") if mi == 0 else ("r1",)
-        for scenario, rate in SCENARIOS.items():
-            for member in members:
-                key = [SEED, mi, len(scenario), len(member) + 7 * (member == "r2")]
-                r = np.random.default_rng(np.random.SeedSequence(key))
+        for si, (scenario, rate) in enumerate(SCENARIOS.items()):
+            for ki, member in enumerate(members):
+                r = np.random.default_rng(np.random.SeedSequence([seed, 901, mi, si, ki]))
                 noise = np.zeros(len(years))
                 for i in range(1, len(years)):
                     noise[i] = 0.45 * noise[i - 1] + r.normal(0, 0.55)
-                trend = (0.02 * (years - FIRST_YEAR) + rate * np.clip(years - 2025, 0, None)
-                         * (0.8 + 0.1 * mi))
-                value = 1.2 + bias + trend + noise
+                trend = (0.02 * (years - FIRST_YEAR) + rate
+                         * np.clip(years - LAST_YEAR, 0, None) * (0.8 + 0.1 * mi))
+                value = 1.0 + bias + trend + noise
                 rows += [(model, scenario, member, int(y), round(float(v), 3))
                          for y, v in zip(years, value, strict=True)]
     return pd.DataFrame(rows, columns=["model", "scenario", "member", "year", "value"])
 
 
 def _bathymetry_dataset(dom: Domain) -> xr.Dataset:
-    lon = np.round(np.arange(168.0, 194.0001, 0.1), 4)  # 0..360 convention, on purpose
-    lat = np.round(np.arange(56.5, 64.5001, 0.05), 4)
+    lon = np.round(np.arange(174.0, 187.0001, 0.1), 4)  # 0..360 convention, on purpose
+    lat = np.round(np.arange(-64.5, -59.4999, 0.05), 4)
     LO, LA = np.meshgrid(lon, lat)
     x, y = dom.to_xy(LO, LA)
     depth = np.round(_depth(x, y), 1).astype("float32")
@@ -228,14 +250,22 @@ def _bathymetry_dataset(dom: Domain) -> xr.Dataset:
                                            "long_name": "sea floor depth (invented)"})},
         coords={"lat": ("lat", lat, {"units": "degrees_north"}),
                 "lon": ("lon", lon, {"units": "degrees_east"})},
-        attrs={"title": "Invented bathymetry of the demo shelf", "Conventions": "CF-1.8"},
+        attrs={"title": f"Invented bathymetry of the {NAME}", "Conventions": "CF-1.8"},
     )
     return ds
 
 
 def _domain_geojson() -> dict:
-    return {"type": "Feature", "properties": {"name": "invented demo shelf"},
+    return {"type": "Feature", "properties": {"name": f"{NAME} (invented)"},
             "geometry": {"type": "Polygon", "coordinates": [[list(p) for p in SHELF]]}}
+
+
+def _config_text() -> str:
+    """The sample configuration: the template with the austral winter months."""
+    old = 'months = "11-4"  '
+    if TEMPLATE.count(old) != 1:  # pragma: no cover - guards the template's wording
+        raise RuntimeError("the config template no longer holds the skill.months line")
+    return TEMPLATE.replace(old, 'months = "5-10"  ')
 
 
 def write_scenario(out: Path, seed: int = SEED) -> list[Path]:
@@ -247,7 +277,7 @@ def write_scenario(out: Path, seed: int = SEED) -> list[Path]:
         write_csv(sc.ice, out / "ice.csv"),
         write_csv(sc.trajectories, out / "trajectories.csv"),
         write_json(sc.domain, out / "domain.geojson"),
-        write_bytes(TEMPLATE.encode(), out / "coldindex.toml"),
+        write_bytes(_config_text().encode(), out / "coldindex.toml"),
     ]
     with atomic_path(out / "bathymetry.nc") as tmp:
         sc.bathymetry.to_netcdf(tmp, engine="scipy", format="NETCDF3_64BIT")

@@ -512,7 +512,9 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     if cfg.inputs.ice is not None:
         kc = cfg.skill
         ice = sk.ice_frame(readers.read_ice(cfg.inputs.ice, cfg.ice_columns), str(cfg.inputs.ice))
-        preds = sk.winter_predictors(ice, sk.parse_months(kc.months), kc.winter)
+        preds = sk.winter_predictors(ice, sk.parse_months(kc.months), kc.winter,
+                                     survey=sk.survey_month(kc.survey_month,
+                                                            indices["median_doy"]))
         tgt = series[kc.column].dropna()
         lag_list = sk.parse_lags(kc.lags)
         skill_tab = sk.skill_table(preds, tgt, lag_list, kc.confidence)

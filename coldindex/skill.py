@@ -1,9 +1,14 @@
 """Ice-to-bottom-temperature predictability: lagged skill, persistence, hindcast, outlook.
 
-Predictors are winter-month ice values and a winter aggregate, labelled by the
-summer that follows the winter (with a winter starting in November, November
-and December of year Y belong to winter Y+1). ``lag`` L pairs winter W with the
-target of year W + L, so lag 0 is "this winter -> this coming summer".
+Predictors are winter-month ice values and a winter aggregate. **Winter
+labelling:** a winter is labelled with the year of the first survey that starts
+after the winter's last month, and ``lag`` L pairs winter W with the target of
+year W + L, so lag 0 pairs a winter with the first survey after it. The ice file
+keeps calendar year and month. With a July survey and winter months 11-4,
+November and December of year Y belong to winter Y+1; with a January survey and
+winter months 5-10, May to October of year Y belong to winter Y+1 (the survey of
+January Y+1). The survey month is given, or read from the target's median survey
+day (:func:`survey_month`).
 
 Significance accounts for the autocorrelation of both series through
 Bretherton et al.'s (1999, eq. 31) effective sample size, with lag-1
@@ -100,20 +105,95 @@ def ice_frame(raw: pd.DataFrame, source: str = "ice file") -> pd.DataFrame:
     return out.drop(columns="row")
 
 
-def winter_predictors(ice: pd.DataFrame, months: list[int], aggregate: str = "mean"
-                      ) -> pd.DataFrame:
-    """One row a winter (labelled by the following summer), one column a predictor.
+def survey_month(given: int | None = None, median_doy: ArrayLike | None = None) -> int:
+    """The survey's month, given or from the target's median survey day. [1..12]
+
+    Parameters
+    ----------
+    given
+        The month (1..12) from ``--survey-month`` or ``skill.survey_month``; None
+        (or 0 from the config) to derive it.
+    median_doy
+        Each year's median day of year of the casts (``median_doy`` of
+        ``indices.csv``); the month of their median (a non-leap calendar) is used.
+
+    Returns
+    -------
+    int
+        The survey month.
+    """
+    if given:
+        if not 1 <= int(given) <= 12:
+            raise InputError(f"--survey-month (skill.survey_month) needs a month in 1..12, "
+                             f"got: {given}.")
+        return int(given)
+    doy = np.asarray(median_doy if median_doy is not None else [], float)
+    doy = doy[np.isfinite(doy)]
+    if len(doy) == 0:
+        raise InputError("The target has no median_doy column to tell the survey month; give "
+                         "it with --survey-month M (1..12) or skill.survey_month.")
+    day = int(np.clip(np.round(np.median(doy)), 1, 365))
+    return int((pd.Timestamp(2001, 1, 1) + pd.Timedelta(days=day - 1)).month)
+
+
+def winter_labels(year: ArrayLike, month: ArrayLike, months: list[int], survey: int
+                  ) -> NDArray[np.int64]:
+    """Winter label of each (calendar year, month) of the ice file. [year]
+
+    A winter is labelled with the year of the first survey that starts after the
+    winter's last month; lag 0 pairs that winter with that survey.
+
+    Parameters
+    ----------
+    year, month
+        Calendar year and month of each ice value (months inside ``months``).
+    months
+        Winter months in order (e.g. 11, 12, 1, ..., 4, or 5, ..., 10); when the
+        span wraps over the new year, months at or after the first belong to the
+        winter that ends in the next calendar year.
+    survey
+        Month the survey starts (1..12); it must not fall inside the winter.
+
+    Returns
+    -------
+    numpy.ndarray
+        The winter label of each value.
+
+    Examples
+    --------
+    >>> winter_labels([2000, 2001], [11, 4], [11, 12, 1, 2, 3, 4], survey=7).tolist()
+    [2001, 2001]
+    >>> winter_labels([2000, 2000], [5, 10], [5, 6, 7, 8, 9, 10], survey=1).tolist()
+    [2001, 2001]
+    """
+    if survey in months:
+        raise InputError(f"The survey month {survey} falls inside the winter months "
+                         f"{','.join(map(str, months))}; choose --months (skill.months) that "
+                         "end before the survey starts, or set --survey-month "
+                         "(skill.survey_month).")
+    y = np.asarray(year, dtype=np.int64)
+    m = np.asarray(month, dtype=np.int64)
+    wraps = months[0] > months[-1]
+    end_year = y + ((m >= months[0]) & wraps).astype(np.int64)  # calendar year of the last month
+    return end_year + int(survey <= months[-1])
+
+
+def winter_predictors(ice: pd.DataFrame, months: list[int], aggregate: str = "mean", *,
+                      survey: int) -> pd.DataFrame:
+    """One row a winter (labelled by the first survey after it), one column a predictor.
 
     Parameters
     ----------
     ice
         ``year``, ``month``, ``ice`` (see :func:`ice_frame`).
     months
-        Winter months in order (e.g. 11, 12, 1, ..., 4); months at or after the
-        first one, when the span wraps, belong to the next year's winter.
+        Winter months in order (e.g. 11, 12, 1, ..., 4, or 5, ..., 10).
     aggregate
         ``mean`` or ``max`` over the months: the ``ice_winter_<aggregate>``
         predictor, NaN for a winter missing any of them.
+    survey
+        Month the survey starts (1..12), see :func:`survey_month`; winters are
+        labelled by :func:`winter_labels`.
 
     Returns
     -------
@@ -122,10 +202,8 @@ def winter_predictors(ice: pd.DataFrame, months: list[int], aggregate: str = "me
     """
     if aggregate not in ("mean", "max"):
         raise InputError(f"--winter needs to be mean or max, got: {aggregate!r}.")
-    wraps = months[0] > months[-1]
-    first = months[0]
     sub = ice[ice["month"].isin(months)].copy()
-    sub["winter"] = sub["year"] + ((sub["month"] >= first) & wraps).astype(int)
+    sub["winter"] = winter_labels(sub["year"], sub["month"], months, survey)
     wide = sub.pivot(index="winter", columns="month", values="ice").reindex(columns=months)
     wide.columns = [f"ice_{MONTH_NAMES[m - 1]}" for m in months]
     agg = wide.mean(axis=1, skipna=False) if aggregate == "mean" else wide.max(axis=1,

@@ -88,9 +88,12 @@ def test_check_reports_planted_faults_of_the_sample(tmp_path: Path):
     qc = pd.read_csv(tmp_path / "qc.csv")
     flags = set(qc["flag"])
     for reason in ("missing", "sentinel", "duplicate_copy", "duplicate_conflict",
-                   "outside_domain", "lat_out_of_range"):
+                   "outside_domain"):
         assert reason in flags
         assert reason in text
+    # The latitude whose sign was lost lands in the other hemisphere, outside the domain.
+    flipped = qc[qc["lat"] > 0]
+    assert len(flipped) == 1 and flipped["flag"].iloc[0] == "outside_domain"
     flagged = qc[qc["flag"] != "ok"]
     for row in flagged["row"]:
         assert str(row) in text

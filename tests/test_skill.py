@@ -15,6 +15,8 @@ from coldindex.skill import (
     outlook,
     parse_months,
     skill_table,
+    survey_month,
+    winter_labels,
     winter_predictors,
 )
 from tests.conftest import SAMPLE
@@ -26,16 +28,44 @@ def raw_ice(rows):
     return df
 
 
-def test_winter_labelled_by_following_summer():
-    # Common practice, no single source (and the guide's contract): with a winter starting in
-    # November, November and December of year Y belong to winter Y + 1.
+def test_winter_label_northern_july_survey():
+    # The guide's contract (a winter is labelled with the year of the first survey that
+    # starts after its last month): with a July survey and winter months 11-4, November and
+    # December of year Y belong to winter Y + 1, which lag 0 pairs with the survey of July Y+1.
     ice = ice_frame(raw_ice([(2000, 11, 1.0), (2000, 12, 2.0), (2001, 1, 3.0),
                              (2001, 2, 4.0)]))
-    P = winter_predictors(ice, parse_months("11-2"))
+    P = winter_predictors(ice, parse_months("11-2"), survey=7)
     assert list(P.index) == [2001]
     assert P.loc[2001, "ice_nov"] == 1.0 and P.loc[2001, "ice_winter_mean"] == 2.5
     assert parse_months("11-4") == [11, 12, 1, 2, 3, 4]
-    assert winter_predictors(ice, [1, 2], "max").loc[2001, "ice_winter_max"] == 4.0
+    assert winter_predictors(ice, [1, 2], "max", survey=7).loc[2001, "ice_winter_max"] == 4.0
+    assert winter_labels([2000, 2000, 2001], [11, 12, 4], parse_months("11-4"), 7).tolist() == [
+        2001, 2001, 2001]
+
+
+def test_winter_label_southern_january_survey():
+    # The same contract with a January survey and winter months 5-10: May to October of year
+    # Y belong to winter Y + 1 (the survey of January Y + 1), not to winter Y.
+    rows = [(y, m, float(10 * (y - 2000) + m)) for y in (2000, 2001) for m in range(5, 11)]
+    P = winter_predictors(ice_frame(raw_ice(rows)), parse_months("5-10"), survey=1)
+    assert list(P.index) == [2001, 2002]
+    assert P.loc[2001, "ice_may"] == 5.0 and P.loc[2002, "ice_oct"] == 20.0
+    assert winter_labels([2000, 2000], [5, 10], parse_months("5-10"), 1).tolist() == [2001, 2001]
+    # A survey later in the same calendar year (December) follows that winter directly.
+    assert winter_labels([2000], [10], parse_months("5-10"), 12).tolist() == [2000]
+
+
+def test_survey_month_given_or_from_median_survey_day():
+    assert survey_month(7) == 7
+    assert survey_month(None, [30.0, 40.0, np.nan]) == 2  # day 35 is 4 February
+    assert survey_month(0, [182.0, 190.0]) == 7
+    assert survey_month(None, [365.0]) == 12
+    with pytest.raises(InputError, match="--survey-month"):
+        survey_month(13)
+    with pytest.raises(InputError, match="no median_doy"):
+        survey_month(None, [np.nan])
+    with pytest.raises(InputError, match="inside the winter months"):
+        winter_labels([2000], [1], parse_months("11-4"), 2)
 
 
 @pytest.mark.parametrize("rows, message", [
@@ -52,17 +82,36 @@ def test_ice_validation(rows, message):
 @pytest.fixture(scope="module")
 def sample():
     ice = ice_frame(read_ice(SAMPLE / "ice.csv"))
-    P = winter_predictors(ice, parse_months("11-4"))
+    P = winter_predictors(ice, parse_months("5-10"), survey=1)
     # Target: the demo's planted story, by construction cold after heavy ice. Use the
     # generator's own winter anomaly so the test does not need the whole index run.
-    from coldindex.demo import make_scenario
+    from coldindex.demo import FIRST_YEAR, LAST_YEAR, make_scenario
 
     sc = make_scenario()
-    years = np.arange(1982, 2026)
+    years = np.arange(FIRST_YEAR, LAST_YEAR + 1)
     rng = np.random.default_rng(0)
     t = pd.Series([-0.8 * sc.winter_anomaly[int(y)] + rng.normal(0, 0.3) for y in years],
                   index=years)
     return P, t
+
+
+def test_demo_pairs_southern_winter_with_the_next_january_survey():
+    # By construction (coldindex.demo), the ice of May-October of calendar year Y is scaled
+    # by the anomaly that drives the survey of January Y + 1. The sample's ice file keeps
+    # calendar years; the labelling must pair them with the next survey.
+    from coldindex.demo import FIRST_YEAR, LAST_YEAR, make_scenario
+
+    anomaly = pd.Series(make_scenario().winter_anomaly)
+    ice = ice_frame(read_ice(SAMPLE / "ice.csv"))
+    assert ice["year"].max() == LAST_YEAR  # calendar years, the newest winter complete
+    P = winter_predictors(ice, parse_months("5-10"), survey=1)
+    assert P.index.min() == FIRST_YEAR and P.index.max() == LAST_YEAR + 1
+    both = pd.DataFrame({"ice": P["ice_winter_mean"], "anomaly": anomaly}).dropna()
+    assert both.corr().iloc[0, 1] > 0.98
+    # Labelling the winter by its own calendar year (a northern-summer habit) misses by one.
+    wrong = P["ice_winter_mean"].set_axis(P.index - 1)
+    off = pd.DataFrame({"ice": wrong, "anomaly": anomaly}).dropna()
+    assert off.corr().iloc[0, 1] < 0.8
 
 
 def test_planted_ice_carries_skill_and_shuffled_ice_does_not(sample):
@@ -98,25 +147,33 @@ def test_outlook_probabilities_and_observed_summer(sample):
     o = outlook(P, t, hc, c)
     assert o["p_cold"] + o["p_average"] + o["p_warm"] == pytest.approx(1.0)
     assert o["lo"] < o["predicted"] < o["hi"]
-    assert o["year"] == 2026 and "observed" not in o  # the newest winter's March is known
-    o2 = outlook(P.loc[:2025], t, hc, c)
-    assert o2["year"] == 2025 and "observed" in o2
+    last = int(t.index.max())
+    # The newest winter (May-October of the last survey's year) is complete: its outlook is
+    # for the coming January's survey, not yet observed.
+    assert o["year"] == last + 1 and o["winter"] == last + 1 and "observed" not in o
+    o2 = outlook(P.loc[:last], t, hc, c)
+    assert o2["year"] == last and "observed" in o2
 
 
 def test_too_few_common_years(sample):
     P, t = sample
     with pytest.raises(TooFewDataError, match="at least 10"):
-        hindcast(P, t.loc[:1986], lag=0)
+        hindcast(P, t.loc[:int(t.index.min()) + 4], lag=0)
 
 
 def test_skill_cli_end_to_end(tmp_path: Path, sample):
     _, t = sample
     target = tmp_path / "target.csv"
-    pd.DataFrame({"Year": t.index, "bottom_mean_c": t.to_numpy()}).to_csv(target, index=False)
+    pd.DataFrame({"Year": t.index, "bottom_mean_c": t.to_numpy(),
+                  "median_doy": 36.0}).to_csv(target, index=False)
     result = CliRunner().invoke(app, ["skill", "--ice", str(SAMPLE / "ice.csv"), "--target",
                                       str(target), "--value", "bottom_mean_c", "--out",
-                                      str(tmp_path / "o"), "--target-columns", "year=Year"])
+                                      str(tmp_path / "o"), "--target-columns", "year=Year",
+                                      "--months", "5-10"])
     assert result.exit_code == 0, result.output
+    text = " ".join(result.output.split())
+    assert "survey month 2, from the median survey day" in text
+    assert f"bottom_mean_c in {int(t.index.max()) + 1} is forecast" in text
     assert "Outlook: From the" in result.output and "P(cold)" in result.output
     sk = pd.read_csv(tmp_path / "o" / "skill.csv")
     assert list(sk.columns) == ["predictor", "lag", "n", "n_eff", "r", "r_lo", "r_hi",
@@ -127,6 +184,22 @@ def test_skill_cli_end_to_end(tmp_path: Path, sample):
     assert list(hc.columns) == ["year", "observed", "predicted", "persistence"]
     for name in ("outlook.json", "skill.png", "hindcast.png"):
         assert (tmp_path / "o" / name).stat().st_size > 0
+
+
+def test_skill_cli_needs_a_survey_month(tmp_path: Path, sample):
+    _, t = sample
+    target = tmp_path / "target.csv"
+    pd.DataFrame({"year": t.index, "bottom_mean_c": t.to_numpy()}).to_csv(target, index=False)
+    args = ["skill", "--ice", str(SAMPLE / "ice.csv"), "--target", str(target), "--value",
+            "bottom_mean_c", "--months", "5-10"]
+    result = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "o")])
+    assert result.exit_code == 2 and "--survey-month" in result.output
+    assert "Traceback" not in result.output
+    assert not (tmp_path / "o" / "skill.csv").exists()
+    result = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "o2"), "--survey-month",
+                                      "1"])
+    assert result.exit_code == 0, result.output
+    assert (tmp_path / "o2" / "skill.csv").is_file()
 
 
 def test_skill_cli_bad_ice(tmp_path: Path):
