@@ -407,16 +407,31 @@ EMERGENCE = Table(
         Column("last_cold_year", "-", "Last year with a cold adjusted value (any member).",
                "int"),
         Column("stop_year", "-", "First year from which P(at least one cold year in the "
-               "window) stays below `--p-stop`; blank when not by the end.", "int"),
-        Column("stopped", "-", "Whether cold years stop by the end of the trajectories.",
-               "bool"),
-        Column("spread", "as observed", "Residual SD about the smooth expected value.",
+               "window), under the fitted AR(1) noise, stays below `--p-stop`; blank unless "
+               "`state` is `stopped` (ensemble rows: the median, blank when censored).", "int"),
+        Column("stopped", "-", "Whether `state` is `stopped`.", "bool"),
+        Column("state", "-", "`stopped`; `not_by_end` (no stop year by the end: right-"
+               "censored); `never_cold` (cold years unlikely from the first window on, so no "
+               "stop year inside the record: left-censored). Ensemble rows also "
+               "`undetermined` (an even split across a censored end).", "str"),
+        Column("spread", "as observed", "Marginal SD of the AR(1) year-to-year noise about "
+               "the smooth expected value (corrected for what the smoother absorbs).",
                "float"),
+        Column("lag1", "1", "Lag-1 autocorrelation of that noise (method of moments through "
+               "the smoother's weights).", "float"),
         Column("models", "1", "Ensemble rows: number of models.", "int"),
         Column("models_stopped", "1", "Ensemble rows: models with a stop year.", "int"),
+        Column("models_never_cold", "1", "Ensemble rows: models never cold in their record "
+               "(counted as earlier than every year in the median).", "int"),
         Column("stop_year_min", "-", "Ensemble rows: earliest model stop year.", "int"),
         Column("stop_year_max", "-", "Ensemble rows: latest model stop year (blank when some "
                "model has none by the end).", "int"),
+        Column("calibration_start", "-", "First year of the calibration period.", "int"),
+        Column("calibration_end", "-", "Last year of the calibration period.", "int"),
+        Column("calibration_years", "1", "Years with both observed and model values in the "
+               "calibration period.", "int"),
+        Column("short_calibration", "-", "True when fewer than 20 calibration years were "
+               "accepted with `--short-calibration`.", "bool"),
     ),
 )
 
