@@ -189,7 +189,12 @@ def model_fields(path: Path, var: str | None, season: list[int], cell_lon: Float
 def adjust_cells(model: FloatArray, model_years: NDArray[np.int_], obs: FloatArray,
                  obs_years: NDArray[np.int_], method: str, calibration: tuple[int, int]
                  ) -> FloatArray:
-    """Adjust (year, cell) model temperatures per cell against observed fields."""
+    """Adjust (year, cell) model temperatures per cell against observed fields.
+
+    ``qmap`` is :func:`coldindex.project.quantile_map` cell by cell: one quantile
+    definition (Hazen positions) for the model and the observed calibration
+    fields, so observed fields mapped onto themselves come back unchanged.
+    """
     if method == "none":
         return model
     mcal = model[(model_years >= calibration[0]) & (model_years <= calibration[1])]

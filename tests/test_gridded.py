@@ -84,6 +84,20 @@ def test_area_column_and_adjust_cells_refuses_qdm(files):
                      np.arange(2001, 2011), "qdm", (2001, 2010))
 
 
+def test_qmap_per_cell_returns_its_own_calibration_fields():
+    # One quantile definition on the gridded path too: fields adjusted against themselves over
+    # the calibration years are unchanged, cell by cell (the old mix of plotting positions
+    # pulled every cell's extremes towards its median).
+    rng = np.random.default_rng(4)
+    years = np.arange(2001, 2031)
+    fields = rng.normal(0.0, 1.0, (len(years), 6)) + np.linspace(-1, 1, 6)
+    got = adjust_cells(fields, years, fields, years, "qmap", (2001, 2030))
+    np.testing.assert_allclose(got, fields, atol=1e-12)
+    obs = rng.gamma(2.0, 1.0, (len(years), 6))
+    got = adjust_cells(fields, years, obs, years, "qmap", (2001, 2030))
+    np.testing.assert_allclose(np.sort(got, axis=0), np.sort(obs, axis=0), atol=1e-12)
+
+
 def test_missing_variable_is_named(files):
     d, _ = files
     with pytest.raises(InputError, match="variables present: tob"):
