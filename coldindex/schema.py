@@ -91,9 +91,11 @@ CASTS = Table(
 
 ICE = Table(
     "ice",
-    "Input: a monthly winter sea-ice series. A winter is labelled by the summer that follows "
-    "it: with a winter starting in November, November and December of year Y belong to "
-    "winter Y+1.",
+    "Input: a monthly winter sea-ice series in calendar years and months. A winter is "
+    "labelled with the year of the first survey that starts after the winter's last month, "
+    "and lag 0 pairs that winter with that survey: with a July survey and winter months "
+    "11-4, November and December of year Y belong to winter Y+1; with a January survey and "
+    "winter months 5-10, May to October of year Y belong to winter Y+1.",
     (
         Column("year", "-", "Calendar year of the month.", "int", True),
         Column("month", "-", "Calendar month, 1..12.", "int", True),
@@ -328,8 +330,8 @@ SKILL = Table(
     (
         Column("predictor", "-", "`ice_<mon>` (one winter month) or `ice_winter_mean`/`_max`.",
                "str"),
-        Column("lag", "years", "Target year minus winter label (0 = the summer after the "
-               "winter).", "int"),
+        Column("lag", "years", "Target year minus winter label (0 = the first survey after "
+               "the winter).", "int"),
         Column("n", "1", "Years the predictor and target share.", "int"),
         Column("n_eff", "1", "Effective sample size, Bretherton et al. (1999) eq. 31, from "
                "Marriott-Pope-Kendall corrected lag-1 autocorrelations.", "float"),
