@@ -368,11 +368,22 @@ def skill(
              "Y+1; a January survey with --months 5-10 puts May-Oct of Y in winter Y+1.",
         min=1, max=12)] = None,
     winter: Annotated[str, typer.Option(help="Winter aggregate: mean or max.")] = "mean",
-    lags: Annotated[str, typer.Option(help="Lags in years, e.g. 0-2 (0 = the first survey "
-                                      "after the winter).")] = "0-2",
+    lags: Annotated[str, typer.Option(help="Lags in years, e.g. 0-2: lag L pairs a winter "
+                                      "with the survey L years after the first survey that "
+                                      "follows it (lag 0 = that first survey: the July "
+                                      "survey after a Nov-Apr winter, the January survey "
+                                      "after a May-Oct winter). The hindcast and outlook "
+                                      "choose predictor and lag among these.")] = "0-2",
+    outlook_lag: Annotated[int | None, typer.Option(
+        help="Use only this lag (one of --lags) for the hindcast and outlook; default: "
+             "chosen inside the hindcast folds.", min=0)] = None,
+    outlook_q_max: Annotated[float, typer.Option(
+        help="Largest q-value the chosen predictor may have; above it, or without positive "
+             "cross-validated skill, the outlook is climatological.")] = 0.1,
     confidence: Annotated[float, typer.Option(help="Confidence of intervals.")] = 0.9,
     reference: Annotated[str | None, typer.Option(
-        help="Reference period A-B for anomalies and cut values.")] = None,
+        help="Reference period A-B for anomalies, cut values and the climatological "
+             "outlook.")] = None,
     cuts: Annotated[Path | None, typer.Option(
         help="cuts.json for the outlook's classes (default: terciles).")] = None,
     leave_out: Annotated[int, typer.Option(
@@ -411,13 +422,12 @@ def skill(
                       f"{'' if survey_month else ', from the median survey day'}).")
     preds = sk.winter_predictors(ice_df, sk.parse_months(months), winter, survey=survey)
     lag_list = sk.parse_lags(lags)
-    table = sk.skill_table(preds, tgt, lag_list, confidence, ref)
-    hc = sk.hindcast(preds, tgt, lag_list[0], leave_out)
     if cuts is not None:
         c = _cuts_for(cuts, value)
     else:
         c = cl.cuts_by_rule(tgt.index, tgt.to_numpy(), value, "tercile", ref)
-    ol = sk.outlook(preds, tgt, hc, c, confidence)
+    table, hc, ol = sk.skill_and_outlook(preds, tgt, lag_list, c, confidence, ref, leave_out,
+                                         outlook_lag, outlook_q_max)
 
     best = table.sort_values(["q_value", "p_value"]).iloc[0]
     sig = table[table["q_value"] < 0.1]
@@ -435,7 +445,9 @@ def skill(
     else:
         out_console.print(f"Skill: no month x lag combination is significant (smallest q = "
                           f"{best['q_value']:.2f}); the ice carries no demonstrable skill.")
-    out_console.print(f"Hindcast (lag {hc.lag}, leave-{hc.leave_out}-out): anomaly correlation "
+    out_console.print(f"Hindcast (predictor and lag chosen in each fold from lags "
+                      f"{', '.join(map(str, hc.lags))}, most often lag {hc.lag}; "
+                      f"leave-{hc.leave_out}-out): anomaly correlation "
                       f"{hc.anomaly_correlation:.2f}, RMSE {hc.rmse:.3g}, skill score "
                       f"{hc.msss_climatology:.2f} against climatology and "
                       f"{hc.msss_persistence:.2f} against persistence.")
@@ -467,8 +479,12 @@ def project(
     ] = None,
     adjust: Annotated[str, typer.Option(help="none, delta, qmap or qdm.")] = "qdm",
     calibration: Annotated[str | None, typer.Option(
-        help="Calibration period A-B (default: the overlap of model and observed years).")
+        help="Calibration period A-B (default: the overlap of model and observed years; at "
+             "least 20 shared years).")
     ] = None,
+    short_calibration: Annotated[bool, typer.Option(
+        "--short-calibration", help="Accept fewer than 20 calibration years (needs "
+        "--calibration; recorded in emergence.csv).")] = False,
     window: Annotated[int, typer.Option(help="Window (years) for the stop year.")] = 10,
     p_stop: Annotated[float, typer.Option(
         help="Cold years have stopped when P(at least one in the window) < this.")] = 0.1,
@@ -502,7 +518,7 @@ def project(
     else:
         c = cl.cuts_by_rule(obs["year"], obs["value"], value)
     opts = pj.ProjectOptions(adjust=adjust, calibration=cl.parse_reference(calibration),
-                             window=window, p_stop=p_stop)
+                             window=window, p_stop=p_stop, short_calibration=short_calibration)
     bound = None
     if value.startswith("below_"):
         dom_path = domain or (observed.parent / "domain.geojson")
@@ -516,7 +532,8 @@ def project(
         traj = gridded.trajectories_from_netcdf(trajectories, fields, value, var, season,
                                                 adjust, opts.calibration, scheduler)
         opts = pj.ProjectOptions(adjust="none", calibration=opts.calibration, window=window,
-                                 p_stop=p_stop)
+                                 p_stop=p_stop, short_calibration=short_calibration,
+                                 adjusted_upstream=adjust)
         out_console.print("Gridded path: temperatures adjusted per grid cell against "
                           f"{fields}, then {value} recomputed on the survey grid.")
     else:
@@ -526,8 +543,13 @@ def project(
             for p in trajectories]
         traj = pd.concat(frames, ignore_index=True)
     res = pj.project(traj, obs["year"], obs["value"], c, opts, bound)
-    out_console.print(f"Calibration {res.calibration[0]}-{res.calibration[1]}, adjustment "
-                      f"{adjust}; cut values {c.low:.4g} / {c.high:.4g} ({c.rule}).")
+    out_console.print(f"Calibration {res.calibration[0]}-{res.calibration[1]} "
+                      f"({res.calibration_years} shared years), adjustment {adjust}; cut values "
+                      f"{c.low:.4g} / {c.high:.4g} ({c.rule}).")
+    if res.short_calibration:
+        out_console.print(f"Caution: the bias adjustment rests on {res.calibration_years} "
+                          "calibration years, fewer than 20, accepted with "
+                          "--short-calibration (recorded in emergence.csv).")
     for sentence in res.summaries:
         out_console.print(sentence)
     written = [write_csv(res.projection, out / "projection.csv"),

@@ -139,8 +139,15 @@ class SkillConfig:
     lags: str = "0-2"
     confidence: float = 0.9
     leave_out: int = 3
+    outlook_lag: int = -1
+    outlook_q_max: float = 0.1
 
     def __post_init__(self) -> None:
+        _check(self.outlook_lag >= -1, "skill.outlook_lag",
+               "a lag from skill.lags (or -1: chosen inside the hindcast folds)",
+               self.outlook_lag)
+        _check(0 < self.outlook_q_max <= 1, "skill.outlook_q_max", "a value in (0, 1]",
+               self.outlook_q_max)
         _check(0 <= self.survey_month <= 12, "skill.survey_month",
                "a month in 1..12 (or 0: the month of the target's median survey day)",
                self.survey_month)
@@ -161,8 +168,12 @@ class ProjectConfig:
     window: int = 10
     p_stop: float = 0.1
     units: str = "degC"
+    short_calibration: bool = False
 
     def __post_init__(self) -> None:
+        _check(not self.short_calibration or bool(self.calibration),
+               "project.short_calibration", "false unless project.calibration is given",
+               self.short_calibration)
         _check(self.adjust in ("none", "delta", "qmap", "qdm"), "project.adjust",
                "one of none, delta, qmap, qdm", self.adjust)
         _check(self.window >= 1, "project.window", "a whole number >= 1", self.window)
@@ -446,13 +457,16 @@ survey_month = 0          # month the survey starts, 1..12; 0 = month of the med
 # lag 0 pairs it with that survey (July survey, months 11-4: Nov-Dec of Y -> winter Y+1;
 # January survey, months 5-10: May-Oct of Y -> winter Y+1).
 winter = "mean"           # mean or max
-lags = "0-2"
+lags = "0-2"              # the hindcast and outlook choose predictor and lag among these
 leave_out = 3
+outlook_lag = -1          # -1: chosen inside the hindcast folds; or one lag of skill.lags
+outlook_q_max = 0.1       # above this q-value (or without skill) the outlook is climatological
 
 [project]
 column = "bottom_mean_c"
 adjust = "qdm"            # none, delta, qmap, qdm
-calibration = ""          # A-B, empty = overlap of model and observed years
+calibration = ""          # A-B, empty = overlap of model and observed years (>= 20 years)
+short_calibration = false # true accepts fewer than 20 years with an explicit calibration
 window = 10
 p_stop = 0.1
 units = "degC"

@@ -517,10 +517,10 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
                                                             indices["median_doy"]))
         tgt = series[kc.column].dropna()
         lag_list = sk.parse_lags(kc.lags)
-        skill_tab = sk.skill_table(preds, tgt, lag_list, kc.confidence)
-        hc = sk.hindcast(preds, tgt, lag_list[0], kc.leave_out)
         kcuts = cuts.get(kc.column) or cl.cuts_by_rule(tgt.index, tgt.to_numpy(), kc.column)
-        ol = sk.outlook(preds, tgt, hc, kcuts, kc.confidence)
+        skill_tab, hc, ol = sk.skill_and_outlook(
+            preds, tgt, lag_list, kcuts, kc.confidence, None, kc.leave_out,
+            None if kc.outlook_lag < 0 else kc.outlook_lag, kc.outlook_q_max)
         written.append(writers.write_csv(skill_tab, rel / "skill.csv"))
         written.append(writers.write_csv(hc.table[["year", "observed", "predicted",
                                                    "persistence"]], rel / "hindcast.csv"))
@@ -540,7 +540,8 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
         bound = check.domain.area_km2 if pc.column.startswith("below_") else None
         proj = pj.project(traj, s.index, s.to_numpy(), pcuts, pj.ProjectOptions(
             adjust=pc.adjust, calibration=cl.parse_reference(pc.calibration or None),
-            window=pc.window, p_stop=pc.p_stop), bound)
+            window=pc.window, p_stop=pc.p_stop, short_calibration=pc.short_calibration),
+            bound)
         written.append(writers.write_csv(proj.projection, rel / "projection.csv"))
         written.append(writers.write_csv(proj.emergence, rel / "emergence.csv"))
 
@@ -562,6 +563,10 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
                   "inputs_sha256": inputs,
                   "casts_sha256_by_year": year_hashes(check.qc.table), "frozen": frozen,
                   "versions": _versions()}
+    if proj is not None:
+        prov["projection_calibration"] = {
+            "start": proj.calibration[0], "end": proj.calibration[1],
+            "years": proj.calibration_years, "short_calibration": proj.short_calibration}
     prev_prov = json.loads((prev / "provenance.json").read_text()) if prev else None
     prev_ind = pd.read_csv(prev / "indices.csv") if prev else None
     # Compare the files as written (same rounding on both sides) and JSON-normalised

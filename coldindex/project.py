@@ -67,7 +67,13 @@ EMERGENCE_COLUMNS = EMERGENCE.columns
 
 @dataclass(frozen=True)
 class ProjectOptions:
-    """Settings of the projection (``coldindex project``)."""
+    """Settings of the projection (``coldindex project``).
+
+    ``short_calibration`` accepts fewer than 20 calibration years (with an
+    explicit ``calibration``; recorded in ``emergence.csv``);
+    ``adjusted_upstream`` names the adjustment already applied per grid cell on
+    the gridded path (the guard then applies as well).
+    """
 
     adjust: str = "qdm"
     calibration: tuple[int, int] | None = None
@@ -76,6 +82,7 @@ class ProjectOptions:
     span: int = 30
     qdm_window: int = 30
     short_calibration: bool = False
+    adjusted_upstream: str = "none"
 
     def __post_init__(self) -> None:
         if self.adjust not in ADJUSTMENTS:
@@ -699,10 +706,11 @@ def project(traj: pd.DataFrame, obs_years: ArrayLike, obs_values: ArrayLike, cut
                          "--calibration within both records.")
     model_years = set(traj["year"].tolist())
     n_cal = int(sum(1 for y in finite if cal[0] <= y <= cal[1] and y in model_years))
-    if options.adjust != "none":
+    adjusting = options.adjust != "none" or options.adjusted_upstream != "none"
+    if adjusting:
         check_calibration(n_cal, cal, options.calibration is not None,
                           options.short_calibration)
-    short = options.adjust != "none" and n_cal < MIN_CALIBRATION_YEARS
+    short = adjusting and n_cal < MIN_CALIBRATION_YEARS
     rows = []
     emergence = []
     end = int(traj["year"].max())

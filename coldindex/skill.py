@@ -18,6 +18,7 @@ and for the many month x lag combinations through Benjamini-Hochberg q-values.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -307,12 +308,13 @@ def skill_table(predictors: pd.DataFrame, target: pd.Series, lags: list[int],
 
 @dataclass
 class Hindcast:
-    """Cross-validated hindcast of the target from the best ice predictor.
+    """Cross-validated hindcast of the target from the best ice predictor and lag.
 
     Attributes
     ----------
     table
-        ``year``, ``observed``, ``predicted``, ``persistence``, ``predictor``.
+        ``year``, ``observed``, ``predicted``, ``persistence``, ``climatology``,
+        ``predictor``, ``lag`` (the predictor and lag chosen in that year's fold).
     anomaly_correlation, rmse
         Skill of the hindcast (rmse in the target's unit).
     msss_climatology, msss_persistence
@@ -320,7 +322,9 @@ class Hindcast:
     leave_out
         Years left out around each forecast year (1 = leave-one-out).
     lag
-        Lag of the hindcast.
+        The lag chosen most often across the folds.
+    lags
+        The lags the choice was made from.
     """
 
     table: pd.DataFrame
@@ -330,38 +334,53 @@ class Hindcast:
     msss_persistence: float
     leave_out: int
     lag: int
+    lags: tuple[int, ...] = (0,)
 
 
-def _choose_and_fit(X: pd.DataFrame, y: pd.Series) -> tuple[str, float, float, float, float]:
-    """Pick the predictor with the largest |r| on these years; fit y ~ x by OLS.
+def _lagged_candidates(predictors: pd.DataFrame, lags: Sequence[int]) -> pd.DataFrame:
+    """Every predictor at every lag, indexed by target year (columns ``(predictor, lag)``)."""
+    cols = {}
+    for lag in lags:
+        for name in predictors.columns:
+            s = predictors[name].copy()
+            s.index = s.index + lag
+            cols[(name, lag)] = s
+    return pd.DataFrame(cols)
 
-    Returns the predictor, slope, intercept, and the means of x and y used.
+
+def _choose_and_fit(X: pd.DataFrame, y: pd.Series
+                    ) -> tuple[tuple[str, int], float, float, float]:
+    """Pick the candidate with the largest |r| on these years; fit y ~ x by OLS.
+
+    Returns the ``(predictor, lag)`` chosen, slope, intercept and the mean of y.
     """
     best, best_r = None, -1.0
-    for name in X.columns:
-        ok = X[name].notna() & y.notna()
+    for key in X.columns:
+        ok = X[key].notna() & y.notna()
         if ok.sum() < 5:
             continue
-        r = abs(_corr(X.loc[ok, name].to_numpy(), y[ok].to_numpy()))
+        r = abs(_corr(X.loc[ok, key].to_numpy(), y[ok].to_numpy()))
         if np.isfinite(r) and r > best_r:
-            best, best_r = name, r
+            best, best_r = key, r
     if best is None:
-        raise TooFewDataError("too few years to choose a predictor")
+        raise TooFewDataError("The ice and target series share fewer than 5 years at every "
+                              "lag; a predictor cannot be chosen.")
     ok = X[best].notna() & y.notna()
     x, yy = X.loc[ok, best].to_numpy(), y[ok].to_numpy()
     slope, intercept = np.polyfit(x, yy, 1)
-    return best, float(slope), float(intercept), float(x.mean()), float(yy.mean())
+    return (str(best[0]), int(best[1])), float(slope), float(intercept), float(yy.mean())
 
 
-def hindcast(predictors: pd.DataFrame, target: pd.Series, lag: int = 0, leave_out: int = 1
-             ) -> Hindcast:
-    """Leave-k-out cross-validated regression hindcast, predictor chosen inside each fold.
+def hindcast(predictors: pd.DataFrame, target: pd.Series, lags: int | Sequence[int] = 0,
+             leave_out: int = 1) -> Hindcast:
+    """Leave-k-out cross-validated regression hindcast; predictor and lag chosen in each fold.
 
-    For each year Y with a predictor value, the years within ``leave_out // 2`` of
-    Y are removed; on the rest the climatology, the predictor with the largest
-    |r| and the regression are fitted, then Y is forecast. No information from
-    Y (or its neighbours) reaches its forecast. Persistence forecasts Y by the
-    observed Y - 1, climatology by the training mean.
+    For each target year Y, the years within ``leave_out // 2`` of Y are
+    removed; on the rest the climatology, the predictor *and lag* with the
+    largest |r| (among those whose winter value for Y exists) and the
+    regression are fitted, then Y is forecast. No information from Y (or its
+    neighbours) reaches its forecast, the choice of lag included. Persistence
+    forecasts Y by the observed Y - 1, climatology by the training mean.
 
     Parameters
     ----------
@@ -369,8 +388,8 @@ def hindcast(predictors: pd.DataFrame, target: pd.Series, lag: int = 0, leave_ou
         Winter predictors indexed by winter label.
     target
         Target values indexed by year.
-    lag
-        Target year = winter label + lag.
+    lags
+        Lag or lags to choose from (target year = winter label + lag).
     leave_out
         Odd number of years left out around each forecast year (1 = leave-one-out;
         3 or more for autocorrelated series).
@@ -382,92 +401,212 @@ def hindcast(predictors: pd.DataFrame, target: pd.Series, lag: int = 0, leave_ou
     """
     if leave_out < 1 or leave_out % 2 == 0:
         raise InputError(f"--leave-out needs an odd number >= 1, got: {leave_out}.")
-    X = predictors.copy()
-    X.index = X.index + lag
-    years = sorted(set(X.index[X.notna().any(axis=1)]) & set(target.dropna().index))
+    lag_list = sorted({int(lags)} if isinstance(lags, (int, np.integer)) else
+                      {int(v) for v in lags})
+    X = _lagged_candidates(predictors, lag_list)
+    tgt = target.dropna()
+    years = sorted(set(X.index[X.notna().any(axis=1)]) & set(tgt.index))
     if len(years) < MIN_YEARS:
         raise TooFewDataError(f"The ice and target series share {len(years)} years; the "
                               f"hindcast needs at least {MIN_YEARS}.")
+    X = X.loc[years]
+    y = tgt.loc[years]
     half = leave_out // 2
     rows = []
     for yr in years:
         train = [t for t in years if abs(t - yr) > half]
-        best, slope, intercept, _, ymean = _choose_and_fit(X.loc[train], target[train])
-        xv = X.loc[yr, best]
-        pred = intercept + slope * xv if np.isfinite(xv) else np.nan
+        usable = X.columns[X.loc[yr].notna().to_numpy()]
+        (best, lag), slope, intercept, _ = _choose_and_fit(X.loc[train, usable], y[train])
+        pred = intercept + slope * float(X.loc[yr, (best, lag)])
         prev = target.get(yr - 1, np.nan)
-        rows.append({"year": yr, "observed": float(target[yr]), "predicted": float(pred),
-                     "persistence": float(prev), "climatology": ymean, "predictor": best})
+        rows.append({"year": yr, "observed": float(y[yr]), "predicted": float(pred),
+                     "persistence": float(prev), "climatology": float(y[train].mean()),
+                     "predictor": best, "lag": lag})
     tab = pd.DataFrame(rows)
-    ok = tab["predicted"].notna()
-    obs, pred, clim = (tab.loc[ok, c].to_numpy() for c in ("observed", "predicted",
-                                                           "climatology"))
+    obs, pred, clim = (tab[c].to_numpy() for c in ("observed", "predicted", "climatology"))
     mse = float(np.mean((obs - pred) ** 2))
     mse_clim = float(np.mean((obs - clim) ** 2))
-    pers_ok = ok & tab["persistence"].notna()
+    pers_ok = tab["persistence"].notna()
     mse_p = float(np.mean((tab.loc[pers_ok, "observed"] - tab.loc[pers_ok, "persistence"]) ** 2))
     mse_fp = float(np.mean((tab.loc[pers_ok, "observed"] - tab.loc[pers_ok, "predicted"]) ** 2))
+    modal = int(tab["lag"].value_counts().sort_index().idxmax())
     return Hindcast(table=tab, anomaly_correlation=_corr(obs - clim, pred - clim),
                     rmse=float(np.sqrt(mse)), msss_climatology=1.0 - mse / mse_clim,
-                    msss_persistence=1.0 - mse_fp / mse_p, leave_out=leave_out, lag=lag)
+                    msss_persistence=1.0 - mse_fp / mse_p, leave_out=leave_out, lag=modal,
+                    lags=tuple(lag_list))
+
+
+def _class_of(v: float, cuts: Cuts) -> str:
+    colder_low = cuts.direction == "lower"
+    if v < cuts.low:
+        return "cold" if colder_low else "warm"
+    if v > cuts.high:
+        return "warm" if colder_low else "cold"
+    return "average"
 
 
 def outlook(predictors: pd.DataFrame, target: pd.Series, hc: Hindcast, cuts: Cuts,
-            confidence: float = 0.9) -> dict:
-    """Forecast for the latest winter's target year, with interval and class probabilities.
+            confidence: float = 0.9, table: pd.DataFrame | None = None, q_max: float = 0.1,
+            reference: tuple[int, int] | None = None) -> dict:
+    """Outlook for the next target year: from the ice when it has skill, else climatology.
 
-    The regression and the predictor are fitted on all shared years; the
-    interval and the probabilities assume a Gaussian error with the
-    cross-validated hindcast RMSE (climatology computed inside each fold).
+    The target year is the latest winter label plus the smallest lag of the
+    hindcast (the first survey the newest ice can speak for). The predictor and
+    lag are chosen among ``hc.lags`` as in the hindcast (largest |r| on all
+    shared years, among those whose winter value for that year exists) and the
+    regression is fitted on all shared years; the interval and the class
+    probabilities assume a Gaussian error with the cross-validated hindcast
+    RMSE. When the hindcast's skill score against climatology is not positive,
+    or the chosen predictor and lag's q-value in ``table`` is above ``q_max``,
+    the outlook is climatological instead: the class frequencies of the target
+    over the reference period, the reference mean, and its empirical interval.
+
+    Parameters
+    ----------
+    predictors, target
+        As for :func:`hindcast`.
+    hc
+        The hindcast (its lags and cross-validated skill).
+    cuts
+        Cut values of the target's classes.
+    confidence
+        Confidence of the interval.
+    table
+        The skill table (:func:`skill_table`) with the q-values and the test
+        against persistence; without it only the skill score decides.
+    q_max
+        Largest q-value the chosen predictor may have for a regression outlook.
+    reference
+        Reference period of the climatological outlook (default: every year).
 
     Returns
     -------
     dict
-        ``year``, ``predictor``, ``winter``, ``predicted``, ``lo``, ``hi``,
-        ``confidence``, ``p_cold``, ``p_average``, ``p_warm``, ``cuts``, and
-        ``observed`` and ``observed_class`` when that summer is already observed.
+        ``year``, ``winter``, ``lag``, ``predictor``, ``basis`` (``regression`` or
+        ``climatology``), ``reason`` (why climatology; empty otherwise),
+        ``predicted``, ``lo``, ``hi``, ``confidence``, ``p_cold``, ``p_average``,
+        ``p_warm``, ``climatology`` (the reference class frequencies, cold,
+        average, warm), ``cuts``, ``hindcast_rmse``, ``msss_climatology``,
+        ``q_value``, ``q_max``, ``p_beats_persistence``, ``beats_persistence``,
+        ``lags_considered``, and ``observed``/``observed_class`` when that year is
+        already observed.
     """
-    X = predictors.copy()
-    X.index = X.index + hc.lag
-    years = sorted(set(X.index[X.notna().any(axis=1)]) & set(target.dropna().index))
-    best, slope, intercept, _, _ = _choose_and_fit(X.loc[years], target[years])
-    avail = predictors[best].dropna()
-    winter = int(avail.index.max())
-    year = winter + hc.lag
-    pred = intercept + slope * float(avail[winter])
-    s = hc.rmse
-    zc = float(ndtri(0.5 + confidence / 2.0))
-    p_low = float(ndtr((cuts.low - pred) / s))
-    p_high = float(ndtr((pred - cuts.high) / s))
+    X = _lagged_candidates(predictors, hc.lags)
+    tgt = target.dropna()
+    winter = int(predictors.index[predictors.notna().any(axis=1)].max())
+    year = winter + min(hc.lags)
+    if year in X.index:
+        usable = X.columns[X.loc[year].notna().to_numpy()]
+    else:
+        usable = X.columns[:0]
+    if len(usable) == 0:
+        raise TooFewDataError(f"No ice predictor has a value for the outlook year {year} at "
+                              f"lags {', '.join(map(str, hc.lags))}; check the newest winter "
+                              "of the ice file.")
+    years = sorted(set(X.index[X.notna().any(axis=1)]) & set(tgt.index))
+    (best, lag), slope, intercept, _ = _choose_and_fit(X.loc[years, usable], tgt[years])
+    pred = intercept + slope * float(X.loc[year, (best, lag)])
+    q = p_beats = float("nan")
+    if table is not None:
+        row = table[(table["predictor"] == best) & (table["lag"] == lag)]
+        if len(row):
+            q = float(row["q_value"].iloc[0])
+            p_beats = float(row["p_beats_persistence"].iloc[0])
+    ref = tgt if reference is None else tgt[(tgt.index >= reference[0])
+                                             & (tgt.index <= reference[1])]
+    classes = [_class_of(float(v), cuts) for v in ref.to_numpy()]
+    clim = [classes.count(c) / len(classes) for c in ("cold", "average", "warm")]
+    reasons = []
+    if not hc.msss_climatology > 0:
+        reasons.append(f"its cross-validated skill score against climatology is "
+                       f"{hc.msss_climatology:.2f}, not positive")
+    if np.isfinite(q) and q > q_max:
+        reasons.append(f"its q-value {q:.2f} is above {q_max:g}")
     colder_low = cuts.direction == "lower"
-    out = {"year": year, "winter": winter, "lag": hc.lag, "predictor": best,
-           "predicted": pred, "lo": pred - zc * s, "hi": pred + zc * s,
-           "confidence": confidence, "p_cold": p_low if colder_low else p_high,
-           "p_average": 1.0 - p_low - p_high, "p_warm": p_high if colder_low else p_low,
-           "cuts": cuts.to_dict(), "hindcast_rmse": s}
+    out: dict = {"year": year, "winter": year - lag, "lag": lag, "predictor": best,
+                 "basis": "climatology" if reasons else "regression",
+                 "reason": "; ".join(reasons), "confidence": confidence}
+    if reasons:
+        lo_q, hi_q = (0.5 - confidence / 2.0), (0.5 + confidence / 2.0)
+        s_ref = np.sort(ref.to_numpy(float))
+        pp = (np.arange(1, len(s_ref) + 1) - 0.5) / len(s_ref)
+        out.update(predicted=float(np.mean(s_ref)), lo=float(np.interp(lo_q, pp, s_ref)),
+                   hi=float(np.interp(hi_q, pp, s_ref)), p_cold=clim[0], p_average=clim[1],
+                   p_warm=clim[2])
+    else:
+        s = hc.rmse
+        zc = float(ndtri(0.5 + confidence / 2.0))
+        p_low = float(ndtr((cuts.low - pred) / s))
+        p_high = float(ndtr((pred - cuts.high) / s))
+        out.update(predicted=pred, lo=pred - zc * s, hi=pred + zc * s,
+                   p_cold=p_low if colder_low else p_high, p_average=1.0 - p_low - p_high,
+                   p_warm=p_high if colder_low else p_low)
+    alpha = 1.0 - confidence
+    out.update(climatology=clim, cuts=cuts.to_dict(), hindcast_rmse=hc.rmse,
+               msss_climatology=hc.msss_climatology, q_value=q, q_max=q_max,
+               p_beats_persistence=p_beats,
+               beats_persistence=bool(np.isfinite(p_beats) and p_beats < alpha),
+               lags_considered=list(hc.lags))
     if year in target.index and np.isfinite(target[year]):
         v = float(target[year])
-        cls = "average"
-        if v < cuts.low:
-            cls = "cold" if colder_low else "warm"
-        elif v > cuts.high:
-            cls = "warm" if colder_low else "cold"
         out["observed"] = v
-        out["observed_class"] = cls
+        out["observed_class"] = _class_of(v, cuts)
     return out
 
 
+def skill_and_outlook(predictors: pd.DataFrame, target: pd.Series, lags: list[int],
+                      cuts: Cuts, confidence: float = 0.9,
+                      reference: tuple[int, int] | None = None, leave_out: int = 3,
+                      outlook_lag: int | None = None, q_max: float = 0.1
+                      ) -> tuple[pd.DataFrame, Hindcast, dict]:
+    """The skill stage, one way for ``coldindex skill`` and the update.
+
+    The skill table over every requested lag; the hindcast choosing predictor
+    and lag inside its folds from all of them (or only ``outlook_lag``); the
+    outlook (:func:`outlook`).
+
+    Returns
+    -------
+    tuple
+        ``(table, hindcast, outlook)``.
+    """
+    if outlook_lag is not None and outlook_lag not in lags:
+        raise InputError(f"--outlook-lag (skill.outlook_lag) {outlook_lag} is not among the "
+                         f"lags {', '.join(map(str, lags))}; add it to --lags (skill.lags).")
+    if not 0 < q_max <= 1:
+        raise InputError(f"--outlook-q-max (skill.outlook_q_max) needs to be in (0, 1], got: "
+                         f"{q_max}.")
+    table = skill_table(predictors, target, lags, confidence, reference)
+    hc = hindcast(predictors, target, lags if outlook_lag is None else [outlook_lag],
+                  leave_out)
+    ol = outlook(predictors, target, hc, cuts, confidence, table, q_max, reference)
+    return table, hc, ol
+
+
 def outlook_sentence(o: dict, column: str) -> str:
-    """One sentence for the terminal and the report."""
-    probs = max(("cold", o["p_cold"]), ("average", o["p_average"]), ("warm", o["p_warm"]),
-                key=lambda t: t[1])
-    text = (f"From the {o['predictor'].replace('ice_', '').replace('_', ' ')} ice of winter "
-            f"{o['winter']}, {column} in {o['year']} is forecast at {o['predicted']:.3g} "
-            f"({o['confidence']:.0%} interval {o['lo']:.3g} to {o['hi']:.3g}); "
-            f"P(cold) = {o['p_cold']:.2f}, P(average) = {o['p_average']:.2f}, "
-            f"P(warm) = {o['p_warm']:.2f}, most likely {probs[0]}.")
+    """One sentence for the terminal and the report (two when the year is observed)."""
+    ice = f"{o['predictor'].replace('ice_', '').replace('_', ' ')} ice"
+    pers = (f"Against persistence, the ice {'beats' if o['beats_persistence'] else 'does not beat'}"
+            f" it (Williams' t, one-sided p = {o['p_beats_persistence']:.2f})."
+            if o.get("p_beats_persistence") == o.get("p_beats_persistence") else
+            "Whether the ice beats persistence could not be tested.")
+    probs = (f"P(cold) = {o['p_cold']:.2f}, P(average) = {o['p_average']:.2f}, "
+             f"P(warm) = {o['p_warm']:.2f}")
+    if o.get("basis") == "climatology":
+        text = (f"For {column} in {o['year']} the outlook is climatological: the best ice "
+                f"predictor ({ice} at lag {o['lag']}) has no demonstrable skill "
+                f"({o['reason']}), so the outlook gives the reference period's class "
+                f"frequencies, {probs}; {o['confidence']:.0%} range {o['lo']:.3g} to "
+                f"{o['hi']:.3g}. {pers}")
+    else:
+        most = max(("cold", o["p_cold"]), ("average", o["p_average"]),
+                   ("warm", o["p_warm"]), key=lambda t: t[1])
+        text = (f"From the {ice} of winter {o['winter']} (lag {o['lag']}), {column} in "
+                f"{o['year']} is forecast at {o['predicted']:.3g} ({o['confidence']:.0%} "
+                f"interval {o['lo']:.3g} to {o['hi']:.3g}); {probs}, most likely {most[0]}. "
+                f"{pers}")
     if "observed" in o:
-        text += (f" That summer is already observed: {o['observed']:.3g} "
-                 f"({o['observed_class']}); the true pre-survey outlook is a run in spring "
-                 "with the new winter's ice.")
+        text += (f" That year's survey is already observed: {o['observed']:.3g} "
+                 f"({o['observed_class']}); a true outlook is run after the winter, before "
+                 "the survey.")
     return text

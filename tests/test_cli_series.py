@@ -90,3 +90,66 @@ def test_shifts_end_to_end(tmp_path: Path):
     reg = pd.read_csv(out / "regimes.csv")
     for _, g in reg.groupby("method"):
         assert g["n"].sum() == 39
+
+
+def test_project_refuses_a_short_calibration_unless_accepted(tmp_path: Path):
+    rng = np.random.default_rng(6)
+    obs = tmp_path / "obs.csv"
+    oy = np.arange(1990, 2021)
+    pd.DataFrame({"year": oy, "bottom_mean_c": rng.normal(0.5, 0.4, len(oy)).round(3)}).to_csv(
+        obs, index=False)
+    traj = tmp_path / "traj.csv"
+    ty = np.arange(2012, 2101)  # overlap 2012-2020: 9 years
+    pd.DataFrame({"model": "M", "scenario": "s", "year": ty,
+                  "value": (0.3 + 0.02 * (ty - 2012) + rng.normal(0, 0.4, len(ty))).round(3)}
+                 ).to_csv(traj, index=False)
+    code, text = run("project", traj, "--observed", obs, "--value", "bottom_mean_c", "--out",
+                     tmp_path / "a", "--units", "degC")
+    text = " ".join(text.split())
+    assert code == 2 and "overlap in 9 years (2012-2020)" in text
+    assert "--short-calibration" in text and "Traceback" not in text
+    assert not (tmp_path / "a" / "emergence.csv").exists()
+    code, text = run("project", traj, "--observed", obs, "--value", "bottom_mean_c", "--out",
+                     tmp_path / "b", "--units", "degC", "--short-calibration")
+    assert code == 2 and "explicit --calibration" in " ".join(text.split())
+    code, text = run("project", traj, "--observed", obs, "--value", "bottom_mean_c", "--out",
+                     tmp_path / "c", "--units", "degC", "--calibration", "2012-2020",
+                     "--short-calibration")
+    assert code == 0, text
+    assert "fewer than 20" in " ".join(text.split())
+    em = pd.read_csv(tmp_path / "c" / "emergence.csv")
+    assert em["short_calibration"].all() and (em["calibration_years"] == 9).all()
+
+
+def _ice_and_target(tmp_path: Path, strength: float) -> tuple[Path, Path]:
+    rng = np.random.default_rng(9)
+    winters = np.arange(1980, 2021)
+    ice = rng.gamma(4.0, 1.0, len(winters))
+    rows = [(w - 1, m, round(ice[k] * (0.8 + 0.1 * (m - 5)), 3))
+            for k, w in enumerate(winters) for m in range(5, 11)]  # May-Oct of Y -> winter Y+1
+    ice_path = tmp_path / "ice.csv"
+    pd.DataFrame(rows, columns=["year", "month", "ice"]).to_csv(ice_path, index=False)
+    years = winters[1:]  # the survey of January Y follows winter Y; lag 1 = winter Y - 1
+    t = strength * (ice[:-1] - ice.mean()) + rng.normal(0, 0.5, len(years))
+    target = tmp_path / "target.csv"
+    pd.DataFrame({"year": years, "bottom_mean_c": t.round(3)}).to_csv(target, index=False)
+    return ice_path, target
+
+
+def test_skill_outlook_picks_its_lag_or_falls_back_to_climatology(tmp_path: Path):
+    ice, target = _ice_and_target(tmp_path, -0.6)
+    args = ["skill", "--ice", ice, "--target", target, "--value", "bottom_mean_c", "--months",
+            "5-10", "--survey-month", "1"]
+    code, text = run(*args, "--out", tmp_path / "a")
+    assert code == 0, text
+    ol = json.loads((tmp_path / "a" / "outlook.json").read_text())
+    assert ol["basis"] == "regression" and ol["lag"] == 1 and ol["lags_considered"] == [0, 1, 2]
+    assert "(lag 1)" in " ".join(text.split())
+    code, text = run(*args, "--out", tmp_path / "b", "--outlook-lag", "0")
+    assert code == 0, text
+    ol = json.loads((tmp_path / "b" / "outlook.json").read_text())
+    assert ol["lag"] == 0 and ol["basis"] == "climatology" and ol["reason"]
+    flat = " ".join(text.split())
+    assert "the outlook is climatological" in flat and "persistence" in flat
+    code, text = run(*args, "--out", tmp_path / "c", "--outlook-lag", "4")
+    assert code == 2 and "is not among the lags" in " ".join(text.split())

@@ -13,7 +13,9 @@ from coldindex.skill import (
     hindcast,
     ice_frame,
     outlook,
+    outlook_sentence,
     parse_months,
+    skill_and_outlook,
     skill_table,
     survey_month,
     winter_labels,
@@ -128,11 +130,11 @@ def test_planted_ice_carries_skill_and_shuffled_ice_does_not(sample):
 
 def test_hindcast_uses_no_information_from_the_left_out_year(sample):
     P, t = sample
-    base = hindcast(P, t, lag=0, leave_out=3)
+    base = hindcast(P, t, lags=0, leave_out=3)
     year = 2000
     moved = t.copy()
     moved[year] += 10.0
-    again = hindcast(P, moved, lag=0, leave_out=3)
+    again = hindcast(P, moved, lags=0, leave_out=3)
     b = base.table.set_index("year")
     a = again.table.set_index("year")
     assert a.loc[year, "predicted"] == pytest.approx(b.loc[year, "predicted"], abs=1e-12)
@@ -142,7 +144,7 @@ def test_hindcast_uses_no_information_from_the_left_out_year(sample):
 
 def test_outlook_probabilities_and_observed_summer(sample):
     P, t = sample
-    hc = hindcast(P, t, lag=0, leave_out=1)
+    hc = hindcast(P, t, lags=0, leave_out=1)
     c = cuts_by_rule(t.index, t.to_numpy(), "bottom_mean_c")
     o = outlook(P, t, hc, c)
     assert o["p_cold"] + o["p_average"] + o["p_warm"] == pytest.approx(1.0)
@@ -155,10 +157,73 @@ def test_outlook_probabilities_and_observed_summer(sample):
     assert o2["year"] == last and "observed" in o2
 
 
+def _synthetic(seed, strength, n_years=40):
+    """Ice predictors (AR(1) 0.5, 3 months and their mean) and a target that follows the
+    winter mean of the year before (lag 1) with the given strength; 0 = no skill."""
+    rng = np.random.default_rng(seed)
+    winters = np.arange(1980, 1980 + n_years + 1)
+    e = np.empty((3, len(winters)))
+    e[:, 0] = rng.normal(size=3)
+    for k in range(1, len(winters)):
+        e[:, k] = 0.5 * e[:, k - 1] + np.sqrt(0.75) * rng.normal(size=3)
+    P = pd.DataFrame({"ice_may": e[0], "ice_jun": e[1], "ice_jul": e[2]}, index=winters)
+    P["ice_winter_mean"] = P.mean(axis=1)
+    years = winters[1:]  # targets 1981 .. ; the newest winter is not yet followed
+    t = pd.Series(strength * P["ice_winter_mean"].reindex(years - 1).to_numpy()
+                  + rng.normal(0, 0.3, len(years)), index=years)
+    return P, t
+
+
+def test_hindcast_and_outlook_use_the_lag_that_has_skill():
+    # Truth by construction: the target follows last winter's ice (lag 1) and nothing else.
+    P, t = _synthetic(3, -0.9)
+    c = cuts_by_rule(t.index, t.to_numpy(), "bottom_mean_c")
+    table, hc, o = skill_and_outlook(P, t, [0, 1, 2], c, leave_out=3)
+    best = table.sort_values("q_value").iloc[0]
+    assert best["lag"] == 1
+    assert hc.lag == 1 and (hc.table["lag"] == 1).mean() > 0.9
+    assert hc.lags == (0, 1, 2) and hc.msss_climatology > 0.5
+    assert o["basis"] == "regression" and o["reason"] == ""
+    assert o["lag"] == 1 and o["predictor"] == "ice_winter_mean"
+    # The outlook speaks for the first survey after the newest winter, from the winter before.
+    newest = int(P.index.max())
+    assert o["year"] == newest and o["winter"] == newest - 1
+    # A first-lag-only hindcast (the old behaviour) keeps only what the ice's own
+    # persistence carries over from lag 1.
+    assert hindcast(P, t, lags=0, leave_out=3).msss_climatology < hc.msss_climatology - 0.3
+
+
+def test_no_skill_gives_a_climatological_outlook_with_its_reason():
+    P, t = _synthetic(4, 0.0)
+    c = cuts_by_rule(t.index, t.to_numpy(), "bottom_mean_c")
+    table, hc, o = skill_and_outlook(P, t, [0, 1, 2], c, leave_out=3)
+    assert o["basis"] == "climatology"
+    assert "not positive" in o["reason"] or "q-value" in o["reason"]
+    # The class probabilities are the reference period's class frequencies (terciles here).
+    cls = ["cold" if v < c.low else "warm" if v > c.high else "average" for v in t]
+    freq = [cls.count(k) / len(cls) for k in ("cold", "average", "warm")]
+    assert [o["p_cold"], o["p_average"], o["p_warm"]] == pytest.approx(freq)
+    assert o["climatology"] == pytest.approx(freq)
+    assert o["lo"] < o["predicted"] < o["hi"]
+    text = outlook_sentence(o, "bottom_mean_c")
+    assert "the outlook is climatological" in text
+    assert "no demonstrable skill" in text and "persistence" in text
+
+
+def test_outlook_lag_can_be_given_and_must_be_requested():
+    P, t = _synthetic(3, -0.9)
+    c = cuts_by_rule(t.index, t.to_numpy(), "bottom_mean_c")
+    _, hc, o = skill_and_outlook(P, t, [0, 1, 2], c, outlook_lag=2)
+    assert hc.lags == (2,) and set(hc.table["lag"]) == {2} and o["lag"] == 2
+    assert o["basis"] == "climatology"  # nothing at lag 2
+    with pytest.raises(InputError, match="--outlook-lag .* 3 is not among the lags 0, 1, 2"):
+        skill_and_outlook(P, t, [0, 1, 2], c, outlook_lag=3)
+
+
 def test_too_few_common_years(sample):
     P, t = sample
     with pytest.raises(TooFewDataError, match="at least 10"):
-        hindcast(P, t.loc[:int(t.index.min()) + 4], lag=0)
+        hindcast(P, t.loc[:int(t.index.min()) + 4], lags=0)
 
 
 def test_skill_cli_end_to_end(tmp_path: Path, sample):
