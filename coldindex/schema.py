@@ -362,18 +362,36 @@ HINDCAST = Table(
 
 OUTLOOK = Table(
     "outlook.json",
-    "Output of `coldindex skill`: the outlook for the latest winter's target year.",
+    "Output of `coldindex skill`: the outlook for the first survey after the newest winter.",
     (
-        Column("year", "-", "Forecast year (latest winter with the predictor + lag).", "int"),
-        Column("winter", "-", "Winter label the forecast uses.", "int"),
-        Column("predictor", "-", "Predictor chosen on all shared years.", "str"),
-        Column("predicted", "as target", "Forecast value.", "float"),
-        Column("lo, hi", "as target", "Prediction interval from the cross-validated RMSE "
-               "(Gaussian).", "float"),
-        Column("p_cold, p_average, p_warm", "1", "Class probabilities under the cut values.",
+        Column("year", "-", "Forecast year: the newest winter label plus the smallest lag "
+               "considered.", "int"),
+        Column("winter", "-", "Winter label the forecast uses (year minus lag).", "int"),
+        Column("lag", "years", "Lag chosen (largest |r| on all shared years among the lags "
+               "considered), or the one given with `--outlook-lag`.", "int"),
+        Column("predictor", "-", "Predictor chosen with that lag.", "str"),
+        Column("basis", "-", "`regression` (the ice predictor) or `climatology` (no "
+               "demonstrable skill).", "str"),
+        Column("reason", "-", "Why the outlook is climatological: the hindcast skill score "
+               "against climatology is not positive, or the predictor's q-value is above "
+               "`q_max` (empty for `regression`).", "str"),
+        Column("predicted", "as target", "Forecast value (climatology: the reference mean).",
                "float"),
-        Column("observed, observed_class", "as target", "Present when that summer is already "
-               "observed.", "float"),
+        Column("lo, hi", "as target", "Prediction interval from the cross-validated RMSE "
+               "(Gaussian); climatology: the reference period's empirical range.", "float"),
+        Column("p_cold, p_average, p_warm", "1", "Class probabilities under the cut values "
+               "(climatology: the reference period's class frequencies).", "float"),
+        Column("climatology", "1", "The reference period's class frequencies (cold, average, "
+               "warm).", "float"),
+        Column("msss_climatology", "1", "Cross-validated skill score of the hindcast against "
+               "climatology.", "float"),
+        Column("q_value, q_max", "1", "The chosen predictor and lag's q-value in skill.csv, "
+               "and the largest allowed (`--outlook-q-max`).", "float"),
+        Column("p_beats_persistence, beats_persistence", "1", "Williams' t p-value that the "
+               "ice beats persistence, and whether it is below 1 - confidence.", "float"),
+        Column("lags_considered", "years", "Lags the hindcast and outlook chose from.", "int"),
+        Column("observed, observed_class", "as target", "Present when that year's survey is "
+               "already observed.", "float"),
     ),
 )
 
