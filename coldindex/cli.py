@@ -11,11 +11,14 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any, TypeVar
 
+import click
 import pandas as pd
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
+from rich.text import Text
 
 from coldindex._version import __version__
 from coldindex.config import IndexOptions, parse_column_map
@@ -25,28 +28,72 @@ app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Cold-pool and bottom-temperature indicators from survey casts. "
                        "Decision support: defer to the responsible agency's reviewed "
                        "assessment.")
-out_console = Console()
-err_console = Console(stderr=True)
+
+
+class PlainConsole(Console):
+    """A console that prints strings as plain text, never as rich markup.
+
+    Messages carry file, column, model and station names; ``[extra]``, ``Temp[red]C``
+    or ``[/x]`` in them must print as written. Style a message with
+    :class:`rich.text.Text`; tables still read markup in the cells the CLI builds
+    (escape data put into them with :func:`rich.markup.escape`).
+    """
+
+    def print(self, *objects: Any, markup: bool | None = None, **kwargs: Any) -> None:
+        """Print like :meth:`rich.console.Console.print`, strings without markup."""
+        if markup is None and any(isinstance(o, str) for o in objects):
+            markup = False
+        super().print(*objects, markup=markup, **kwargs)
+
+
+out_console = PlainConsole()
+err_console = PlainConsole(stderr=True)
 F = TypeVar("F", bound=Callable[..., Any])
 
 
+def _error(message: str) -> None:
+    """Print one error sentence on stderr, on one line, as plain text."""
+    err_console.print(Text.assemble(("Error:", "bold red"), " ", " ".join(message.split())),
+                      soft_wrap=True, highlight=False)
+
+
 def _guard(func: F) -> F:
-    """Turn ColdindexError (and a few OS errors) into one line and an exit code."""
+    """Turn every failure into one sentence on stderr and a non-zero exit code.
+
+    Exit codes: 2 bad input or settings, 3 an output cannot be written (disk full,
+    read-only, permission), 4 another update holds the folder, 5 out of memory or
+    an unforeseen failure, 130 interrupted. No traceback is shown.
+    """
 
     @functools.wraps(func)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
+        from coldindex.errors import os_error_sentence
+
+        command = func.__name__
         try:
             return func(*args, **kwargs)
+        except (typer.Exit, click.exceptions.ClickException, click.exceptions.Abort):
+            raise
         except ColdindexError as exc:
-            err_console.print(f"[bold red]Error:[/] {exc}", highlight=False, soft_wrap=True)
+            _error(str(exc))
             raise typer.Exit(exc.exit_code) from None
-        except PermissionError as exc:
-            err_console.print(f"[bold red]Error:[/] permission denied for {exc.filename}; "
-                              "choose a location you can write to.", highlight=False)
+        except MemoryError:
+            _error(f"coldindex {command} ran out of memory; use a coarser --grid-km, fewer "
+                   "simulations or thresholds, or a larger machine (no output was replaced).")
+            raise typer.Exit(5) from None
+        except OSError as exc:
+            _error(os_error_sentence(exc, f"coldindex {command}: accessing").rstrip(".")
+                   + " (no output was replaced).")
             raise typer.Exit(3) from None
         except KeyboardInterrupt:
-            err_console.print("Interrupted; no partial output was left behind.")
+            _error("Interrupted; no partial output was left behind.")
             raise typer.Exit(130) from None
+        except Exception as exc:  # a library error the input checks did not foresee
+            text = " ".join(str(exc).split())[:200]
+            _error(f"coldindex {command} stopped on an unforeseen {type(exc).__name__}"
+                   f"{' (' + text + ')' if text else ''}; no output was replaced; check the "
+                   "inputs and settings, or report this together with them.")
+            raise typer.Exit(5) from None
 
     return wrapper  # type: ignore[return-value]
 
@@ -66,12 +113,15 @@ def main_options(
 
 
 def _thresholds(text: str) -> tuple[float, ...]:
+    from coldindex.config import ConfigError
+
     try:
         values = tuple(float(v) for v in text.split(",") if v.strip())
     except ValueError:
-        raise typer.BadParameter(f"needs numbers separated by commas, got: {text!r}") from None
+        raise ConfigError(f"--thresholds needs numbers separated by commas, got: "
+                          f"{text!r}.") from None
     if not values:
-        raise typer.BadParameter("needs at least one threshold")
+        raise ConfigError("--thresholds needs at least one threshold.")
     return values
 
 
@@ -102,16 +152,15 @@ def check(
     show: Annotated[int, typer.Option(help="Flagged rows to list (0 = none).")] = 40,
 ) -> None:
     """Read casts, run quality control, and print a per-year summary."""
-    from coldindex.io.writers import prepare_out_dir, write_csv
+    from coldindex.io.writers import plan_outputs, write_csv
     from coldindex.pipeline import run_check
 
-    if out is not None:
-        prepare_out_dir(out)
+    outputs = plan_outputs(out, "check", ("qc.csv",), (casts, domain)) if out else None
     run = run_check(casts, parse_column_map(columns), domain)
     qc = run.qc
     counts = qc.counts_by_year()
     reasons = [c for c in counts.columns if c not in ("ok", "median_doy")]
-    table = Table(title=f"Quality control of {casts}", title_justify="left")
+    table = Table(title=f"Quality control of {escape(str(casts))}", title_justify="left")
     table.add_column("year", justify="right")
     table.add_column("used", justify="right")
     for r in reasons:
@@ -132,17 +181,19 @@ def check(
         for c in ("row", "year", "station", "flag", "detail"):
             ft.add_column(c)
         for _, r in flagged.head(show).iterrows():
-            ft.add_row(str(r["row"]), str(r["year"]), str(r["station"]), r["flag"],
-                       r["detail"])
+            ft.add_row(str(r["row"]), escape(str(r["year"])), escape(str(r["station"])),
+                       r["flag"], escape(str(r["detail"])))
         out_console.print(ft)
         if len(flagged) > show:
             out_console.print(f"... {len(flagged) - show} more; write them all with --out.")
-    if out is not None:
-        path = write_csv(qc.table.drop(columns=["doy"]), out / "qc.csv")
-        out_console.print(f"Wrote {path}")
+    if outputs is not None:
+        with outputs as o:
+            write_csv(qc.table.drop(columns=["doy"]), o.path("qc.csv"))
+        for path in outputs.written:
+            out_console.print(f"Wrote {path}")
     if (counts["ok"] >= min_casts).sum() == 0:
-        err_console.print(f"[bold red]Error:[/] no year of {casts} has {min_casts} usable "
-                          "casts; fix the flagged rows or lower --min-casts.")
+        _error(f"no year of {casts} has {min_casts} usable casts; fix the flagged rows or "
+               "lower --min-casts.")
         raise typer.Exit(2)
 
 
@@ -201,7 +252,7 @@ def index(
         out_console.print(f"Note: {note}.")
     skipped = res.table[res.table["note"].fillna("").str.startswith("no indices")]
     for _, r in skipped.iterrows():
-        out_console.print(f"[yellow]{int(r['year'])}[/]: {r['note']}.")
+        out_console.print(f"{int(r['year'])}: {r['note']}.")
     for p in run.written:
         out_console.print(f"Wrote {p}")
 
@@ -225,12 +276,17 @@ def _cuts_for(path: Path, value: str) -> Any:
 
 
 def _cut_values(text: str) -> tuple[float, float]:
+    import math
+
     try:
         low, high = (float(v) for v in text.split(","))
     except ValueError:
-        raise typer.BadParameter(f"needs LOW,HIGH, got: {text!r}") from None
+        raise ColdindexError(f"--cut-values needs two numbers LOW,HIGH, got: {text!r}.") from None
+    if not (math.isfinite(low) and math.isfinite(high) and abs(low) < 1e15
+            and abs(high) < 1e15):
+        raise ColdindexError(f"--cut-values needs finite numbers LOW,HIGH, got: {text!r}.")
     if low > high:
-        raise typer.BadParameter(f"needs LOW <= HIGH, got: {text!r}")
+        raise ColdindexError(f"--cut-values needs LOW <= HIGH, got: {text!r}.")
     return low, high
 
 
@@ -255,11 +311,11 @@ def classify(
     """Classify each year as cold, average or warm by fixed cut values."""
     from coldindex import classify as cl
     from coldindex.io.readers import read_series
-    from coldindex.io.writers import prepare_out_dir, write_csv, write_json
+    from coldindex.io.writers import plan_outputs, write_csv, write_json
 
     if colder is not None and colder not in ("lower", "higher"):
         raise ColdindexError(f"--colder needs to be lower or higher, got: {colder!r}.")
-    prepare_out_dir(out)
+    outputs = plan_outputs(out, "classify", ("classes.csv", "cuts.json"), (series, cuts))
     df = read_series(series, value, parse_column_map(columns))
     ref = cl.parse_reference(reference)
     if cuts is not None:
@@ -270,8 +326,8 @@ def classify(
     else:
         c = cl.cuts_by_rule(df["year"], df["value"], value, rule, ref, colder)
     table = cl.classify(df["year"], df["value"], c, df["sd"] if "sd" in df else None, ref)
-    t = Table(title=f"{value}: cut values {c.low:.4g} and {c.high:.4g} ({c.rule}, "
-                    f"{c.reference or 'whole record'}; {c.direction} is colder)",
+    t = Table(title=escape(f"{value}: cut values {c.low:.4g} and {c.high:.4g} ({c.rule}, "
+                           f"{c.reference or 'whole record'}; {c.direction} is colder)"),
               title_justify="left")
     for col in ("year", "value", "class", "z", *(["p_cold"] if "p_cold" in table else [])):
         t.add_column(col, justify="right")
@@ -286,7 +342,10 @@ def classify(
     counts = table["class"].value_counts()
     out_console.print(", ".join(f"{counts.get(k, 0)} {k}" for k in ("cold", "average", "warm"))
                       + f" years of {len(table)}.")
-    for p in (write_csv(table, out / "classes.csv"), write_json(c.to_dict(), out / "cuts.json")):
+    with outputs as o:
+        write_csv(table, o.path("classes.csv"))
+        write_json(c.to_dict(), o.path("cuts.json"))
+    for p in outputs.written:
         out_console.print(f"Wrote {p}")
 
 
@@ -313,7 +372,7 @@ def shifts(
 ) -> None:
     """Detect regime shifts (STARS, PELT) with red-noise bootstrap p-values."""
     from coldindex.io.readers import read_series
-    from coldindex.io.writers import prepare_out_dir, write_csv
+    from coldindex.io.writers import plan_outputs, write_csv
     from coldindex.regimes import ShiftOptions, detect_shifts
 
     methods = {"both": ("stars", "pelt"), "stars": ("stars",), "pelt": ("pelt",)}
@@ -322,7 +381,7 @@ def shifts(
     opts = ShiftOptions(cutoff=cutoff, alpha=alpha, huber=huber, prewhiten=prewhiten,
                         subsample=subsample, min_size=min_size, boot=boot, seed=seed,
                         null_window=null_window)
-    prepare_out_dir(out)
+    outputs = plan_outputs(out, "shifts", ("shifts.csv", "regimes.csv"), (series,))
     df = read_series(series, value, parse_column_map(columns))
     with err_console.status("Running the red-noise bootstrap..."):
         res = detect_shifts(df["year"], df["value"], methods[method], opts)
@@ -332,7 +391,7 @@ def shifts(
     out_console.print(f"Bootstrap null: AR(1) with lag-1 autocorrelation {res.phi:.2f} "
                       f"(median over {null_window}-year windows, bias-corrected), {boot} "
                       "replicates.")
-    t = Table(title=f"Regime shifts in {value}", title_justify="left")
+    t = Table(title=escape(f"Regime shifts in {value}"), title_justify="left")
     for col in ("method", "first year", "mean before", "mean after", "p (family-wise)",
                 "survives"):
         t.add_column(col, justify="right")
@@ -345,8 +404,10 @@ def shifts(
     out_console.print(t)
     if res.shifts.empty:
         out_console.print("No shift detected.")
-    for p in (write_csv(res.shifts, out / "shifts.csv"),
-              write_csv(res.regimes, out / "regimes.csv")):
+    with outputs as o:
+        write_csv(res.shifts, o.path("shifts.csv"))
+        write_csv(res.regimes, o.path("regimes.csv"))
+    for p in outputs.written:
         out_console.print(f"Wrote {p}")
 
 
@@ -396,14 +457,20 @@ def skill(
     """Lagged skill of winter ice for the target, the persistence baseline, hindcast, outlook."""
     from coldindex import classify as cl
     from coldindex import skill as sk
+    from coldindex.config import check_lags, check_months
     from coldindex.errors import InputError
     from coldindex.io.readers import read_ice, read_series
-    from coldindex.io.writers import prepare_out_dir, write_csv, write_figure, write_json
+    from coldindex.io.writers import plan_outputs, write_csv, write_figure, write_json
     from coldindex.report.figures import hindcast_figure, skill_figure
 
     if not 0 < confidence < 1:
         raise ColdindexError(f"--confidence needs to be in (0, 1), got: {confidence}.")
-    prepare_out_dir(out)
+    check_months(sk.parse_months(months), "--months")
+    check_lags(sk.parse_lags(lags), "--lags")
+    outputs = plan_outputs(out, "skill", ("skill.csv", "hindcast.csv", "outlook.json",
+                                          "skill.png", "hindcast.png"), (ice, target, cuts))
+    if cuts is not None:
+        _cuts_for(cuts, value)  # a bad cuts file is refused before any work
     ice_df = sk.ice_frame(read_ice(ice, parse_column_map(ice_columns, "--ice-columns")),
                           str(ice))
     series = read_series(target, value, parse_column_map(target_columns, "--target-columns"),
@@ -452,15 +519,14 @@ def skill(
                       f"{hc.msss_climatology:.2f} against climatology and "
                       f"{hc.msss_persistence:.2f} against persistence.")
     out_console.print("Outlook: " + sk.outlook_sentence(ol, value))
-    written = [
-        write_csv(table, out / "skill.csv"),
+    with outputs as o:
+        write_csv(table, o.path("skill.csv"))
         write_csv(hc.table[["year", "observed", "predicted", "persistence"]],
-                  out / "hindcast.csv"),
-        write_json(ol, out / "outlook.json"),
-        write_figure(skill_figure(table), out / "skill.png"),
-        write_figure(hindcast_figure(hc.table, ol, value), out / "hindcast.png"),
-    ]
-    for p in written:
+                  o.path("hindcast.csv"))
+        write_json(ol, o.path("outlook.json"))
+        write_figure(skill_figure(table), o.path("skill.png"))
+        write_figure(hindcast_figure(hc.table, ol, value), o.path("hindcast.png"))
+    for p in outputs.written:
         out_console.print(f"Wrote {p}")
 
 
@@ -506,11 +572,20 @@ def project(
     """When do cold years stop? Bias-adjusted model trajectories under fixed cut values."""
     from coldindex import classify as cl
     from coldindex import project as pj
-    from coldindex.io.readers import read_domain, read_series, read_trajectories
-    from coldindex.io.writers import prepare_out_dir, write_csv, write_figure
+    from coldindex.io.readers import (
+        check_trajectories,
+        read_domain,
+        read_series,
+        read_trajectories,
+        refuse_repeated_files,
+    )
+    from coldindex.io.writers import plan_outputs, write_csv, write_figure
     from coldindex.report.figures import projection_figure
 
-    prepare_out_dir(out)
+    refuse_repeated_files(trajectories, "TRAJECTORIES")
+    outputs = plan_outputs(out, "project", ("projection.csv", "emergence.csv",
+                                            "projection.png"),
+                           (*trajectories, observed, cuts, domain, fields))
     obs = read_series(observed, value, parse_column_map(observed_columns, "--observed-columns"),
                       "--observed-columns")
     if cuts is not None:
@@ -542,6 +617,7 @@ def project(
             p, parse_column_map(trajectory_columns, "--trajectory-columns")), str(p))
             for p in trajectories]
         traj = pd.concat(frames, ignore_index=True)
+    check_trajectories(traj, ", ".join(map(str, trajectories)))
     res = pj.project(traj, obs["year"], obs["value"], c, opts, bound)
     out_console.print(f"Calibration {res.calibration[0]}-{res.calibration[1]} "
                       f"({res.calibration_years} shared years), adjustment {adjust}; cut values "
@@ -552,11 +628,12 @@ def project(
                           "--short-calibration (recorded in emergence.csv).")
     for sentence in res.summaries:
         out_console.print(sentence)
-    written = [write_csv(res.projection, out / "projection.csv"),
-               write_csv(res.emergence, out / "emergence.csv"),
-               write_figure(projection_figure(res.projection, res.emergence),
-                            out / "projection.png")]
-    for p in written:
+    with outputs as o:
+        write_csv(res.projection, o.path("projection.csv"))
+        write_csv(res.emergence, o.path("emergence.csv"))
+        write_figure(projection_figure(res.projection, res.emergence),
+                     o.path("projection.png"))
+    for p in outputs.written:
         out_console.print(f"Wrote {p}")
 
 

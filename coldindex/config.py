@@ -9,6 +9,7 @@ Paths are resolved relative to the config file.
 
 from __future__ import annotations
 
+import math
 import sys
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
@@ -74,6 +75,12 @@ class IndexOptions:
 
     def __post_init__(self) -> None:
         _check(len(self.thresholds) > 0, "index.thresholds", "at least one threshold", "[]")
+        _check(len(self.thresholds) <= MAX_THRESHOLDS, "index.thresholds",
+               f"at most {MAX_THRESHOLDS} thresholds (the cap on list lengths)",
+               len(self.thresholds))
+        _check(all(math.isfinite(t) and -5.0 <= t <= 40.0 for t in self.thresholds),
+               "index.thresholds", "finite temperatures in -5..40 °C", self.thresholds)
+        _check(0 <= self.seed < 2**63, "index.seed", "a whole number >= 0", self.seed)
         _check(len(set(self.thresholds)) == len(self.thresholds), "index.thresholds",
                "distinct values", self.thresholds)
         _check(1.0 <= self.grid_km <= 100.0, "index.grid_km", "a value in 1..100 km",
@@ -119,13 +126,19 @@ class ShiftsConfig:
     min_size: int = 5
     boot: int = 999
     seed: int = 20261201
+    p_max: float = 0.05
 
     def __post_init__(self) -> None:
+        _check(0 < self.alpha < 1, "shifts.alpha", "a value in (0, 1) (STARS' detection level)",
+               self.alpha)
+        _check(0 < self.p_max < 1, "shifts.p_max", "a value in (0, 1) (the largest p-value "
+               "for a shift to survive)", self.p_max)
         _check(self.method in ("stars", "pelt", "both"), "shifts.method",
                "one of stars, pelt, both", self.method)
         _check(self.prewhiten in ("none", "ip4", "mpk"), "shifts.prewhiten",
                "one of none, ip4, mpk", self.prewhiten)
         _check(self.boot >= 0, "shifts.boot", "a whole number >= 0", self.boot)
+        _check(0 <= self.seed < 2**63, "shifts.seed", "a whole number >= 0", self.seed)
 
 
 @dataclass(frozen=True)
@@ -189,7 +202,9 @@ class CovariatesConfig:
     reference: str = ""
 
     def __post_init__(self) -> None:
-        _check(all(lag >= 1 for lag in self.lags), "covariates.lags", "whole numbers >= 1",
+        _check(all(1 <= lag <= MAX_LAG_SPAN for lag in self.lags), "covariates.lags",
+               f"whole numbers in 1..{MAX_LAG_SPAN} (the cap on lags)", self.lags)
+        _check(len(set(self.lags)) == len(self.lags), "covariates.lags", "distinct values",
                self.lags)
 
 
@@ -204,6 +219,8 @@ class ReportConfig:
     def __post_init__(self) -> None:
         _check(1 <= self.map_years <= 12, "report.map_years", "a whole number in 1..12",
                self.map_years)
+        _check(0.0 <= self.tolerance < 1.0, "report.tolerance",
+               "a relative change in 0..1 (0 = any change counts)", self.tolerance)
 
 
 @dataclass(frozen=True)
@@ -247,6 +264,28 @@ def _check(ok: bool, key: str, expected: str, got: object) -> None:
         raise ConfigError(f"{key} needs to be {expected}, got: {got!r}.")
 
 
+MAX_THRESHOLDS = 12  # cap on the thresholds of one run (each adds maps to fields.nc)
+MAX_LAG_SPAN = 10  # cap on the span of skill lags and on covariate lags [years]
+
+
+def check_months(months: list[int], key: str) -> list[int]:
+    """Refuse winter months outside 1..12 or repeated; return them unchanged."""
+    _check(bool(months) and all(1 <= m <= 12 for m in months), key, "months in 1..12", months)
+    _check(len(set(months)) == len(months), key, "months without repeats", months)
+    return months
+
+
+def check_lags(lags: list[int], key: str) -> list[int]:
+    """Refuse lags below 0 or spanning more than :data:`MAX_LAG_SPAN` years."""
+    _check(bool(lags) and min(lags) >= 0, key, "whole years >= 0", lags)
+    _check(max(lags) - min(lags) <= MAX_LAG_SPAN, key,
+           f"lags spanning at most {MAX_LAG_SPAN} years (the cap on lags)",
+           f"{min(lags)}-{max(lags)}")
+    _check(max(lags) <= 5 * MAX_LAG_SPAN, key, f"lags of at most {5 * MAX_LAG_SPAN} years",
+           max(lags))
+    return lags
+
+
 def _coerce(key: str, value: Any, default: Any) -> Any:
     """Coerce a TOML value to the type of the dataclass default, or refuse it."""
     if isinstance(default, bool):
@@ -257,8 +296,8 @@ def _coerce(key: str, value: Any, default: Any) -> Any:
                value)
         return value
     if isinstance(default, float):
-        _check(isinstance(value, (int, float)) and not isinstance(value, bool), key,
-               "a number", value)
+        _check(isinstance(value, (int, float)) and not isinstance(value, bool)
+               and math.isfinite(value), key, "a finite number", value)
         return float(value)
     if isinstance(default, str):
         _check(isinstance(value, str), key, "a string", value)
@@ -267,7 +306,8 @@ def _coerce(key: str, value: Any, default: Any) -> Any:
         _check(isinstance(value, list), key, "a list", value)
         kind = type(default[0]) if default else float
         ok = all(isinstance(v, str) for v in value) if kind is str else all(
-            isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
+            isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+            and (kind is not int or float(v).is_integer()) for v in value)
         _check(ok, key, f"a list of {'names' if kind is str else 'numbers'}", value)
         return tuple(kind(v) for v in value)
     return value  # pragma: no cover
@@ -359,11 +399,17 @@ def load_config(path: Path) -> Config:
     Config
         The validated configuration, paths resolved relative to the file.
     """
+    if path.is_dir():
+        raise ConfigError(f"Config file {path} is a folder; give the path of a TOML file.")
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
         raise ConfigError(f"Config file {path} does not exist; give the path of a TOML "
                           "file.") from None
+    except OSError as exc:
+        from coldindex.errors import os_error_sentence
+
+        raise ConfigError(os_error_sentence(exc, "reading the config file", path)) from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise ConfigError(f"Config file {path} is not valid TOML ({exc}); fix the syntax "
                           "at that place.") from None
@@ -445,8 +491,9 @@ reference = ""            # A-B, empty = whole record
 [shifts]
 column = "bottom_mean_c"
 method = "both"           # stars, pelt or both
-cutoff = 10
-alpha = 0.1
+cutoff = 10               # STARS cut-off length; a shift in the last cutoff years is provisional
+alpha = 0.1               # STARS' own detection level
+p_max = 0.05              # a shift survives the red-noise test when its p-value is below this
 boot = 999
 
 [skill]

@@ -28,3 +28,62 @@ class OutputError(ColdindexError):
 
 class TooFewDataError(ColdindexError):
     """Valid input, but too little of it for the requested computation."""
+
+
+class StageError(ColdindexError):
+    """A step failed for a reason the input checks did not foresee."""
+
+    exit_code = 5
+
+
+class BusyError(ColdindexError):
+    """Another run holds the output folder."""
+
+    exit_code = 4
+
+
+_ERRNO_ADVICE = {
+    "ENOSPC": "the disk is full; free some space or choose another folder, then run again",
+    "EDQUOT": "the disk quota is exhausted; free some space or choose another folder, then "
+              "run again",
+    "EROFS": "the file system is read-only; choose a writable folder",
+    "EACCES": "permission denied; choose a location you can write to or fix its permissions",
+    "EPERM": "the operation is not permitted; choose a location you can write to or fix its "
+             "permissions",
+    "ENOENT": "a folder on the way does not exist; check the path",
+    "ENOTDIR": "a part of the path is not a folder; check the path",
+    "EISDIR": "the path is a folder where a file is expected; remove it or choose another "
+              "path",
+    "ELOOP": "the path is a symbolic link, which coldindex does not follow; remove the link "
+             "or choose another path",
+    "EMFILE": "too many files are open; close other programs and run again",
+    "EIO": "the storage reported an input/output error; check the disk and run again",
+}
+
+
+def os_error_sentence(exc: OSError, action: str, path: object = None) -> str:
+    """One sentence for an operating-system error: what failed, where, and what to do.
+
+    Parameters
+    ----------
+    exc
+        The error.
+    action
+        What was being done, e.g. ``"writing"`` or ``"reading"``.
+    path
+        The file concerned (default: the error's own file name).
+
+    Returns
+    -------
+    str
+        E.g. ``"Writing out/fields.nc failed: the disk is full; free some space ..."``.
+    """
+    import errno
+
+    name = errno.errorcode.get(exc.errno or 0, "")
+    where = path if path is not None else (exc.filename or "a file")
+    advice = _ERRNO_ADVICE.get(name)
+    if advice is None:
+        reason = exc.strerror or type(exc).__name__
+        advice = f"{reason}; check the path, the free space and the permissions"
+    return f"{action.capitalize()} {where} failed: {advice}."

@@ -11,6 +11,8 @@ import datetime as dt
 import json
 import os
 import platform
+import re
+import tempfile
 from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -22,7 +24,15 @@ from coldindex._version import __version__
 from coldindex.classify import reference_values
 from coldindex.config import Config, IndexOptions, ShiftsConfig
 from coldindex.domain import Domain, Grid, derive_domain, make_grid
-from coldindex.errors import InputError
+from coldindex.errors import (
+    BusyError,
+    ColdindexError,
+    ConfigError,
+    InputError,
+    OutputError,
+    StageError,
+    os_error_sentence,
+)
 from coldindex.indices import IndexResult, compute_indices
 from coldindex.interpolate import FAMILIES
 from coldindex.io import readers, writers
@@ -57,15 +67,63 @@ def _frozen(out: Path | None) -> dict:  # an index output folder or a release
     if out is None or not (out / FROZEN_NAME).is_file():
         return {}
     try:
-        return json.loads((out / FROZEN_NAME).read_text(encoding="utf-8"))
-    except json.JSONDecodeError:
+        obj = json.loads((out / FROZEN_NAME).read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError):
+        obj = None
+    if not isinstance(obj, dict) or not isinstance(obj.get("variogram_family"), (str, type(None))):
         raise InputError(f"{out / FROZEN_NAME} is damaged; delete it to choose the domain and "
-                         "variogram family afresh (past values may move).") from None
+                         "variogram family afresh (past values may move).")
+    return obj
+
+
+INDEX_OUTPUTS = ("qc.csv", "indices.csv", "fields.nc", DOMAIN_NAME, FROZEN_NAME,
+                 "provenance.json")
+MEMORY_CAP_BYTES = 2 * 1024**3  # Common practice, no single source: a laptop-sized budget
+
+
+def kriging_memory_bytes(n_casts: int, n_cells: int, n_years: int, sims: int) -> int:
+    """Working memory of the index computation, estimated before it starts. [bytes]
+
+    ``8 * (4 n^2 + n m + (2 Y + S) m)``: four n x n kriging matrices for the year with
+    the most casts (n), the cell-to-cast distances (n x m active cells), the mapped
+    estimate and SD of every year (Y) and one year's simulations (S); float64.
+    """
+    n, m = int(n_casts), int(n_cells)
+    return 8 * (4 * n * n + n * m + (2 * int(n_years) + int(sims)) * m)
+
+
+MAX_CELLS = 2_000_000  # cap on grid cells, checked before the grid is laid (no source)
+
+
+def _check_grid_size(domain: Domain, options: IndexOptions) -> None:
+    cells = domain.area_km2 / options.grid_km**2
+    if not cells <= MAX_CELLS:
+        raise InputError(f"The domain ({domain.area_km2:.3g} km2) holds about {cells:.3g} grid "
+                         f"cells of {options.grid_km:g} km, above the cap of {MAX_CELLS:,}; give "
+                         "the survey area as the domain or a coarser grid (--grid-km, "
+                         "index.grid_km).")
+
+
+def _check_memory(casts: pd.DataFrame, grid: Grid, options: IndexOptions) -> None:
+    counts = casts.groupby("year").size()
+    n, year = int(counts.max()), int(counts.idxmax())
+    m = int(grid.mask.sum())
+    need = kriging_memory_bytes(n, m, len(counts), options.sims)
+    if need > MEMORY_CAP_BYTES:
+        raise InputError(
+            f"Mapping {year} ({n} casts) on {m} grid cells of {options.grid_km:g} km needs "
+            f"about {need / 1024**3:.1f} GB, above the {MEMORY_CAP_BYTES / 1024**3:.0f} GB "
+            "cap; use a coarser grid (--grid-km, index.grid_km), fewer simulations, or thin "
+            "the casts of that year.")
 
 
 def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: Grid,
                          options: IndexOptions) -> tuple[list[Path], dict]:
-    """Write qc.csv, indices.csv, fields.nc, domain.geojson and frozen.json into ``out``."""
+    """Write qc.csv, indices.csv, fields.nc, domain.geojson and frozen.json into ``out``.
+
+    ``out`` is a staging folder (``coldindex index``) or a partial release (``update``);
+    neither is visible under its final name before everything is written.
+    """
     assert check.domain is not None
     fields = writers.fields_dataset(result.years, result.estimate, result.sd,
                                     options.thresholds, grid, check.domain, result.casts)
@@ -142,8 +200,10 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
               on_start: Callable[[int], None] | None = None) -> IndexRun:
     """Compute the indices and write ``indices.csv``, ``fields.nc`` and companions.
 
-    Every result is computed before the first file is written; each file is
-    written atomically.
+    Every result is computed before the first file is written; the outputs are
+    staged together and replace the old ones only when all are written
+    (:class:`coldindex.io.writers.OutputSet`); an output that would replace an input
+    is refused before any work.
 
     Parameters
     ----------
@@ -165,14 +225,17 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
     IndexRun
         Results, notes and the files written.
     """
-    writers.prepare_out_dir(out)
+    writers.refuse_overwriting_inputs(writers.output_targets(out, INDEX_OUTPUTS),
+                                      [casts_path, domain_path, bathymetry_path])
     frozen = _frozen(out)
     check = run_check(casts_path, mapping, domain_path, options, previous_out=out, derive=True)
     assert check.domain is not None
     if check.qc.casts.empty:
         raise InputError(f"{casts_path} has no usable casts; run coldindex check to see why.")
     bathy = readers.read_bathymetry(bathymetry_path) if bathymetry_path else None
+    _check_grid_size(check.domain, options)
     grid = make_grid(check.domain, options.grid_km)
+    _check_memory(check.qc.casts, grid, options)
     frozen_family = frozen.get("variogram_family") if options.variogram == "auto" else None
     notes = []
     if frozen_family:
@@ -185,22 +248,24 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
         notes.append(f"circulant embedding clipped {result.clipped_share:.2e} of the "
                      "eigenvalue mass")
 
-    written, frozen_out = _write_index_outputs(out, check, result, grid, options)
     inputs = {"casts": {"path": str(casts_path), "sha256": writers.sha256_file(casts_path)}}
     for name, p in (("domain", domain_path), ("bathymetry", bathymetry_path)):
         if p is not None:
             inputs[name] = {"path": str(p), "sha256": writers.sha256_file(p)}
-    provenance = {
-        "tool": "coldindex", "version": __version__, "command": "index",
-        "python": platform.python_version(),
-        "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
-        "parameters": asdict(options), "column_mapping": dict(mapping or {}),
-        "inputs": inputs, "casts_sha256_by_year": year_hashes(check.qc.table),
-        "frozen": frozen_out,
-        "outputs": {p.name: writers.sha256_file(p) for p in written},
-    }
-    written.append(writers.write_json(provenance, out / "provenance.json"))
-    return IndexRun(check=check, result=result, written=written, notes=notes)
+    writers.prepare_out_dir(out)
+    with writers.OutputSet(out, "index", INDEX_OUTPUTS) as stage:
+        written, frozen_out = _write_index_outputs(stage.dir, check, result, grid, options)
+        provenance = {
+            "tool": "coldindex", "version": __version__, "command": "index",
+            "python": platform.python_version(),
+            "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+            "parameters": asdict(options), "column_mapping": dict(mapping or {}),
+            "inputs": inputs, "casts_sha256_by_year": year_hashes(check.qc.table),
+            "frozen": frozen_out,
+            "outputs": {p.name: writers.sha256_file(p) for p in written},
+        }
+        writers.write_json(provenance, stage.path("provenance.json"))
+    return IndexRun(check=check, result=result, written=stage.written, notes=notes)
 
 
 # --------------------------------------------------------------------------------------
@@ -226,37 +291,194 @@ class UpdateRun:
     notes: list[str] = field(default_factory=list)
 
 
+RELEASE_NAME = re.compile(r"release-(\d{1,9})")
+LATEST_NAME = "latest"
+LOCK_NAME = ".coldindex.lock"
+LOCK_WAIT_S = 3.0  # a second update waits this long for the first, then refuses
+
+
+def _release_dirs(out: Path) -> dict[int, Path]:
+    """``release-<n>`` folders directly inside ``out`` (links are not releases)."""
+    found = {}
+    for p in out.glob("release-*"):
+        m = RELEASE_NAME.fullmatch(p.name)
+        if m and p.is_dir() and not p.is_symlink():
+            found[int(m.group(1))] = p
+    return found
+
+
 def _release_number(out: Path) -> int:
-    nums = [int(p.name.split("-")[1]) for p in out.glob("release-*")
-            if p.is_dir() and p.name.split("-")[1].isdigit()]
-    return max(nums, default=0) + 1
+    return max(_release_dirs(out), default=0) + 1
 
 
-def _previous_release(out: Path, previous: Path | None) -> Path | None:
+def _is_complete(rel: Path) -> bool:
+    prov = rel / "provenance.json"
+    return prov.is_file() and not prov.is_symlink()
+
+
+def _pointer_target(out: Path) -> tuple[Path | None, str]:
+    """The release ``OUT/latest`` names, or None with the reason it names none.
+
+    A missing, empty or unreadable pointer names none (the caller recovers by
+    scanning); a pointer that is a folder or a link, or names anything but a
+    ``release-<n>`` folder directly inside ``out``, is refused.
+    """
+    pointer = out / LATEST_NAME
+    if not os.path.lexists(pointer):
+        return None, f"{pointer} is missing"
+    if pointer.is_symlink() or not pointer.is_file():
+        raise InputError(f"{pointer} is not a plain file (it is a folder or a link); remove it "
+                         "and run again (the newest complete release is then found by its "
+                         "name).")
+    try:
+        text = pointer.read_bytes()[:200].decode("utf-8").strip()
+    except (OSError, UnicodeDecodeError):
+        return None, f"{pointer} cannot be read"
+    if not text:
+        return None, f"{pointer} is empty"
+    if not RELEASE_NAME.fullmatch(text) or (out / text).is_symlink():
+        raise InputError(f"{pointer} names {text[:60]!r}, not a release-<n> folder inside {out}; "
+                         "coldindex trusts only its own releases, so remove the pointer (the "
+                         "newest complete release is then found by its name) or give "
+                         "--previous.")
+    return out / text, ""
+
+
+def _load_provenance(rel: Path) -> dict:
+    path = rel / "provenance.json"
+    try:
+        prov = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError, RecursionError):
+        prov = None
+    if not isinstance(prov, dict):
+        raise InputError(f"{path} is damaged (not a complete JSON object); restore the release "
+                         "or give --previous with an intact one.")
+    return prov
+
+
+def _verify_release(rel: Path, prov: dict, used: list[str]) -> None:
+    """Check every file the update reads from a release against its recorded SHA-256."""
+    hashes = prov.get("outputs_sha256")
+    if not isinstance(hashes, dict) or "indices.csv" not in hashes:
+        raise InputError(f"{rel / 'provenance.json'} records no checksums for the release's "
+                         "files; restore it or give --previous with an intact release.")
+    for name in used:
+        path = rel / name
+        if name not in hashes:
+            if os.path.lexists(path):
+                raise InputError(f"{path} is not recorded in {rel / 'provenance.json'} (it was "
+                                 "added after the release); remove it or give --previous.")
+            continue
+        if path.is_symlink() or not path.is_file():
+            raise InputError(f"{path} is missing from the previous release; restore it or give "
+                             "--previous with an intact release.")
+        if writers.sha256_file(path) != hashes[name]:
+            raise InputError(f"{path} does not match the checksum in {rel / 'provenance.json'} "
+                             "(it changed since the release); restore it or give --previous "
+                             "with an intact release.")
+
+
+def _previous_release(out: Path, previous: Path | None, used: list[str] | None = None
+                      ) -> tuple[Path | None, list[str]]:
+    """The release to compare with, verified, and notes on how it was found.
+
+    ``--previous`` wins; otherwise the release ``OUT/latest`` names, unless a newer
+    complete release exists (a run stopped between its rename and the pointer) or
+    the pointer is lost, in which case the newest complete ``release-<n>`` is used.
+    The files the update reads from it (``used``) are checked against the
+    checksums of its ``provenance.json`` before any work.
+    """
+    notes: list[str] = []
     if previous is not None:
-        if not (previous / "provenance.json").is_file():
+        if not previous.is_dir() or not _is_complete(previous):
             raise InputError(f"{previous} is not a coldindex release (no provenance.json); "
                              "give a release folder with --previous.")
-        prev = previous
+        prev: Path | None = previous
     else:
-        pointer = out / "latest"
-        if not pointer.is_file():
-            return None
-        prev = out / pointer.read_text(encoding="utf-8").strip()
-        if not (prev / "provenance.json").is_file():
-            raise InputError(f"{pointer} names {prev.name}, which is not a complete release; "
-                             "give --previous or remove the pointer.")
-    prov = json.loads((prev / "provenance.json").read_text(encoding="utf-8"))
+        target, why = _pointer_target(out)
+        complete = {n: p for n, p in _release_dirs(out).items() if _is_complete(p)}
+        newest = complete[max(complete)] if complete else None
+        if target is not None and not _is_complete(target):
+            why = f"{out / LATEST_NAME} names {target.name}, which is not a complete release"
+            target = None
+        if target is None:
+            prev = newest
+            if newest is not None:
+                notes.append(f"{why}; compared with {newest.name}, the newest complete release")
+        else:
+            prev = target
+            if newest is not None and newest != target and int(
+                    newest.name.split("-")[1]) > int(target.name.split("-")[1]):
+                prev = newest
+                notes.append(f"{out / LATEST_NAME} named {target.name} but {newest.name} is newer "
+                             "and complete (an earlier run stopped before updating the pointer); "
+                             f"compared with {newest.name}")
+    if prev is None:
+        return None, notes
+    prov = _load_provenance(prev)
     if prov.get("release_format") != RELEASE_FORMAT:
         raise InputError(f"{prev} was written by coldindex {prov.get('version', '?')} in an "
                          "incompatible release format; start a new output folder or give "
                          "--previous with a compatible release.")
-    return prev
+    _verify_release(prev, prov, used or ["indices.csv"])
+    return prev, notes
+
+
+def check_update_config(cfg: Config) -> None:
+    """Settings that need parsing, checked before the update does any work.
+
+    Month and lag texts, reference periods, the cut-value rule, and every column a
+    stage reads from ``indices.csv`` (which the thresholds decide).
+    """
+    from coldindex import classify as cl
+    from coldindex import skill as sk
+    from coldindex.config import check_lags, check_months
+    from coldindex.schema import indices_table
+
+    check_months(sk.parse_months(cfg.skill.months), "skill.months")
+    check_lags(sk.parse_lags(cfg.skill.lags), "skill.lags")
+    for key, text in (("classify.reference", cfg.classify.reference),
+                      ("covariates.reference", cfg.covariates.reference),
+                      ("project.calibration", cfg.project.calibration)):
+        try:
+            cl.parse_reference(text or None)
+        except InputError:
+            raise ConfigError(f"{key} needs two years A-B with A <= B (or empty), got: "
+                              f"{text!r}.") from None
+    rule = cfg.classify.rule
+    if rule.startswith("sd:"):
+        try:
+            k = float(rule[3:])
+        except ValueError:
+            k = float("nan")
+        if not (np.isfinite(k) and 0 <= k <= 10):
+            raise ConfigError(f"classify.rule sd:K needs a number K in 0..10, got: {rule!r}.")
+    names = set(indices_table(cfg.index.thresholds, with_sims=cfg.index.sims > 0).names) - {
+        "year", "variogram", "simulation", "note"}
+    wanted = [("classify.columns", c) for c in cfg.classify.columns] + [
+        ("covariates.columns", c) for c in cfg.covariates.columns] + [
+        ("shifts.column", cfg.shifts.column), ("skill.column", cfg.skill.column),
+        ("project.column", cfg.project.column)]
+    for key, col in wanted:
+        if col not in names:
+            raise ConfigError(f"{key} names {col!r}, which indices.csv will not have with "
+                              f"thresholds {list(cfg.index.thresholds)}; choose among "
+                              f"bottom_mean_c and the below_<T>c_km2 columns.")
+
+
+def _same_input_twice(files: dict[str, Path | None]) -> None:
+    seen: list[tuple[str, Path]] = []
+    for key, p in files.items():
+        if p is None:
+            continue
+        for other_key, q in seen:
+            if writers.same_file(p, q):
+                raise ConfigError(f"{key} and {other_key} name the same file ({p}); give each "
+                                  "input once.")
+        seen.append((key, p))
 
 
 def _check_paths(cfg: Config, out: Path) -> None:
-    from coldindex.errors import ConfigError
-
     if cfg.inputs.casts is None:
         raise ConfigError("inputs.casts needs to be set: the path of the casts file.")
     files = {"inputs.casts": cfg.inputs.casts, "inputs.domain": cfg.inputs.domain,
@@ -264,13 +486,16 @@ def _check_paths(cfg: Config, out: Path) -> None:
              **{f"inputs.trajectories[{k}]": p for k, p in enumerate(cfg.inputs.trajectories)}}
     for key, p in files.items():
         if p is not None and not p.is_file():
-            raise ConfigError(f"{key} names {p}, which does not exist; fix the path (relative "
-                              "to the config file).")
-    out_abs = out.resolve()
+            raise ConfigError(f"{key} names {p}, which does not exist or is not a file; fix the "
+                              "path (relative to the config file).")
+    _same_input_twice(files)
+    # The update writes only a new release-<n> folder, the pointer and its lock: inputs
+    # may sit inside --out (even inside an older release) but never be one of those.
+    writers.refuse_overwriting_inputs([out / LATEST_NAME, out / LOCK_NAME],
+                                      [*files.values(), cfg.source])
     for key, p in files.items():
-        if p is not None and out_abs.is_relative_to(p.resolve().parent):
-            raise ConfigError(f"The output folder {out} lies inside the folder of {key} "
-                              f"({p.parent}); choose an output folder outside the inputs.")
+        if p is not None and out.exists() and writers.same_file(out, p):
+            raise ConfigError(f"The output folder {out} is the file of {key}; choose a folder.")
 
 
 def covariates_table(indices: pd.DataFrame, columns: tuple[str, ...], lags: tuple[int, ...],
@@ -386,9 +611,14 @@ def run_update(cfg: Config, out: Path, previous: Path | None = None,
                progress: Callable[[str], None] | None = None) -> UpdateRun:
     """Run every stage into a new release folder, atomically.
 
-    The release is written under a temporary name inside ``out`` and renamed to
-    ``release-<n>`` when complete; ``out/latest`` then names it. A failure
-    leaves no new release and the earlier ones intact.
+    Paths and settings are checked first, before anything is created. The update
+    then holds an exclusive lock on ``out`` (``out/.coldindex.lock``; a second update
+    waits :data:`LOCK_WAIT_S` seconds, then refuses), finds and verifies the previous
+    release, writes the new one into a private, uniquely named partial folder inside
+    ``out``, renames it to ``release-<n>`` when complete and last replaces the
+    ``out/latest`` pointer. A failure leaves no new release and the earlier ones
+    intact; a run killed between the rename and the pointer leaves a complete
+    release that the next run finds by its name.
 
     Parameters
     ----------
@@ -408,25 +638,73 @@ def run_update(cfg: Config, out: Path, previous: Path | None = None,
     """
     import shutil
 
-    writers.prepare_out_dir(out)
+    from filelock import FileLock, Timeout
+
     _check_paths(cfg, out)
-    prev = _previous_release(out, previous)
-    n = _release_number(out)
-    tmp = out / f".release-{n}.partial"
-    if tmp.exists():
-        shutil.rmtree(tmp)
-    tmp.mkdir()
+    check_update_config(cfg)
+    if previous is not None and not previous.is_dir():
+        raise InputError(f"--previous {previous} is not a folder; give a release folder.")
+    if out.exists():
+        _pointer_target(out)  # refuse an untrusted pointer before creating anything
+    writers.prepare_out_dir(out)
+    lock = FileLock(str(out / LOCK_NAME), timeout=LOCK_WAIT_S)
     try:
-        headlines, notes = _build_release(cfg, tmp, prev, progress)
+        lock.acquire()
+    except Timeout:
+        raise BusyError(f"Another coldindex update is writing into {out}; wait for it to "
+                        "finish, then run again.") from None
+    except OSError as exc:
+        raise OutputError(os_error_sentence(exc, "locking", out / LOCK_NAME)) from None
+    try:
+        for stale in out.glob(".release-*.partial*"):  # left by a killed run
+            if stale.is_dir() and not stale.is_symlink():
+                shutil.rmtree(stale, ignore_errors=True)
+        used = ["indices.csv", FROZEN_NAME, DOMAIN_NAME,
+                *(f"cuts/{c}.json" for c in cfg.classify.columns)]
+        prev, notes = _previous_release(out, previous, used)
+        n = _release_number(out)
         final = out / f"release-{n}"
-        os.replace(tmp, final)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    pointer_tmp = out / ".latest.tmp"
-    pointer_tmp.write_text(final.name + "\n", encoding="utf-8")
-    os.replace(pointer_tmp, out / "latest")
-    return UpdateRun(release=final, headlines=headlines, notes=notes)
+        tmp = Path(tempfile.mkdtemp(prefix=f".release-{n}.partial-", dir=out))
+        stage = ["check"]
+
+        def on_stage(name: str) -> None:
+            stage[0] = name
+            if progress is not None:
+                progress(name)
+
+        try:
+            headlines, build_notes = _build_release(cfg, tmp, prev, on_stage)
+            if os.path.lexists(final):
+                raise OutputError(f"{final} appeared while the update ran; remove it and run "
+                                  "again.")
+            umask = os.umask(0)
+            os.umask(umask)
+            os.chmod(tmp, 0o777 & ~umask)  # mkdtemp made it private while it was partial
+            os.rename(tmp, final)
+        except BaseException as exc:
+            shutil.rmtree(tmp, ignore_errors=True)
+            if isinstance(exc, (ColdindexError, KeyboardInterrupt, SystemExit)):
+                raise
+            raise _stage_error(exc, stage[0]) from exc
+        writers.write_bytes(f"{final.name}\n".encode(), out / LATEST_NAME)
+    finally:
+        lock.release()
+    return UpdateRun(release=final, headlines=headlines, notes=notes + build_notes)
+
+
+def _stage_error(exc: BaseException, stage: str) -> ColdindexError:
+    """One sentence for an unforeseen failure inside a stage of the update."""
+    if isinstance(exc, MemoryError):
+        return StageError(f"The {stage} stage of the update ran out of memory; use a coarser "
+                          "grid or fewer simulations, or run on a larger machine (no release "
+                          "was written).")
+    if isinstance(exc, OSError):
+        return OutputError(os_error_sentence(exc, f"the {stage} stage, at", exc.filename)
+                           .rstrip(".") + " (no release was written).")
+    text = str(exc).strip().splitlines()[0][:160] if str(exc).strip() else ""
+    return StageError(f"The {stage} stage of the update failed ({type(exc).__name__}"
+                      f"{': ' + text if text else ''}); no release was written, check that "
+                      "stage's inputs and settings.")
 
 
 def _stage(progress: Callable[[str], None] | None, name: str) -> None:
@@ -460,14 +738,17 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     family = frozen_prev.get("variogram_family") if opts.variogram == "auto" else None
     if family:
         notes.append(f"variogram family {family} reused from {prev}")
+    _check_grid_size(check.domain, opts)
     grid = make_grid(check.domain, opts.grid_km)
+    _check_memory(check.qc.casts, grid, opts)
     bathy = readers.read_bathymetry(cfg.inputs.bathymetry) if cfg.inputs.bathymetry else None
     res = compute_indices(check.qc.casts, check.domain, grid, opts, bathy, frozen_family=family)
     indices = res.table
     index_files, frozen = _write_index_outputs(rel, check, res, grid, opts)
     written += index_files
     series = {c: pd.Series(indices[c].to_numpy(float), index=indices["year"].to_numpy())
-              for c in indices.columns if c not in ("year", "variogram", "note")}
+              for c in indices.columns if c != "year"
+              and pd.api.types.is_numeric_dtype(indices[c])}
 
     _stage(progress, "classify")
     ref = cl.parse_reference(cfg.classify.reference or None)
@@ -562,6 +843,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
                   "config": _config_dict(cfg), "parameters": asdict(opts),
                   "inputs_sha256": inputs,
                   "casts_sha256_by_year": year_hashes(check.qc.table), "frozen": frozen,
+                  "previous_release": prev.name if prev is not None else None,
                   "versions": _versions()}
     if proj is not None:
         prov["projection_calibration"] = {
@@ -668,7 +950,7 @@ def _report_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame,
                  proj: ProjectionResult | None,
                  revisions: pd.DataFrame, check: CheckRun, pngs: dict[str, bytes],
                  headlines: list[str], prov: dict) -> str:
-    from coldindex.report.html import render, table_html
+    from coldindex.report.html import escape, render, table_html
 
     t = table_html
     cols = ["year", "n_casts", "coverage", "bottom_mean_c",
@@ -696,7 +978,8 @@ def _report_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame,
     sections += [
         ("Revisions", t(revisions) if len(revisions) else
          "<p>No past value changed beyond the tolerance.</p>"),
-        ("Quality control", f"<p>Domain: {check.domain_source}.</p>" + t(qc_counts)),
+        ("Quality control", f"<p>Domain: {escape(check.domain_source)}.</p>"
+         + t(qc_counts)),
         ("Methods", "<p>Ordinary kriging (or kriging with a depth drift) of each year's casts "
          "on a fixed equal-area grid (Isaaks &amp; Srivastava 1989), leave-one-out "
          "cross-validation (Dubrule 1983), conditional simulation by circulant embedding "
@@ -706,9 +989,10 @@ def _report_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame,
          "Williams' t (Steiger 1980); quantile delta mapping (Cannon et al. 2015). Details "
          "and assumptions: docs/methods.md of the coldindex distribution.</p>"),
     ]
-    inputs = "".join(f"<li><code>{k}</code> sha256 {v}</li>"
+    inputs = "".join(f"<li><code>{escape(k)}</code> sha256 {escape(v)}</li>"
                      for k, v in prov["inputs_sha256"].items())
-    provenance = (f"<p>coldindex {prov['version']}; Python {prov['versions']['python']}, "
-                  f"numpy {prov['versions']['numpy']}. Inputs:</p><ul>{inputs}</ul>"
+    provenance = (f"<p>coldindex {escape(prov['version'])}; Python "
+                  f"{escape(prov['versions']['python'])}, numpy "
+                  f"{escape(prov['versions']['numpy'])}. Inputs:</p><ul>{inputs}</ul>"
                   "<p>The run time and per-output checksums are in provenance.json.</p>")
     return render(cfg.report.title, headlines, sections, pngs, CAUTIONS, provenance)

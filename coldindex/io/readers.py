@@ -10,7 +10,7 @@ from __future__ import annotations
 import csv
 import io
 import json
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
@@ -18,19 +18,65 @@ import pandas as pd
 import xarray as xr
 
 from coldindex.domain import Domain, domain_from_geojson
-from coldindex.errors import InputError
+from coldindex.errors import InputError, os_error_sentence
 from coldindex.schema import CASTS, ICE, TRAJECTORIES, Table
 
 _DELIMITERS = ",;\t|"
 
 
+OBSERVED_YEARS = (1800, 2300)  # Common practice, no single source: plausible survey years
+TRAJECTORY_YEARS = (1800, 2500)  # model runs reach 2300 and beyond; 2500 is a generous cap
+MAX_ABS_VALUE = 1e15  # larger magnitudes are corrupt data, not measurements (cap, no source)
+SUMMARY_ROW_NAMES = ("ensemble median", "ensemble", "all", "summary")  # rows we add ourselves
+
+
 def _check_file(path: Path) -> None:
-    if not path.exists():
-        raise InputError(f"{path} does not exist; check the path.")
-    if path.is_dir():
-        raise InputError(f"{path} is a folder, not a file; give the file's path.")
-    if path.stat().st_size == 0:
-        raise InputError(f"{path} is empty; give a file with a header row and data rows.")
+    try:
+        if not path.exists():
+            raise InputError(f"{path} does not exist; check the path.")
+        if path.is_dir():
+            raise InputError(f"{path} is a folder, not a file; give the file's path.")
+        if path.stat().st_size == 0:
+            raise InputError(f"{path} is empty; give a file with a header row and data rows.")
+    except OSError as exc:
+        raise InputError(os_error_sentence(exc, "reading", path)) from None
+
+
+def _read_bytes(path: Path) -> bytes:
+    try:
+        return path.read_bytes()
+    except OSError as exc:
+        raise InputError(os_error_sentence(exc, "reading", path)) from None
+
+
+def refuse_repeated_files(paths: Sequence[Path], what: str) -> None:
+    """Refuse the same file given twice (same real path or inode), e.g. two model files."""
+    from coldindex.io.writers import same_file
+
+    for i, p in enumerate(paths):
+        for q in paths[:i]:
+            if same_file(p, q):
+                raise InputError(f"{what}: {p} is given twice (as {q}); give each file once, or "
+                                 "its values would count twice.")
+
+
+def _check_years(years: pd.Series, rows: pd.Series, path: object, col: str,
+                 bounds: tuple[int, int]) -> None:
+    bad = ~(years.between(*bounds)) & years.notna()
+    if bad.any():
+        r = rows[bad].iloc[0]
+        raise InputError(f"{path}, row {r}: column {col!r} holds {years[bad].iloc[0]:g}, outside "
+                         f"the plausible years {bounds[0]}..{bounds[1]}; fix the value.")
+
+
+def _check_magnitude(values: pd.Series, rows: pd.Series, path: object, col: str) -> None:
+    with np.errstate(invalid="ignore"):
+        bad = values.notna() & ~(values.abs() <= MAX_ABS_VALUE)
+    if bad.any():
+        r = rows[bad].iloc[0]
+        raise InputError(f"{path}, row {r}: column {col!r} holds {values[bad].iloc[0]!r}, which "
+                         f"is not a finite value of plausible size (|x| <= {MAX_ABS_VALUE:g}); "
+                         "fix or blank it.")
 
 
 def _decode(path: Path, data: bytes) -> str:
@@ -73,7 +119,7 @@ def read_text_table(path: Path) -> pd.DataFrame:
         All values as stripped strings, blanks as ``""``; headers stripped.
     """
     _check_file(path)
-    text = _decode(path, path.read_bytes())
+    text = _decode(path, _read_bytes(path))
     if not text.strip():
         raise InputError(f"{path} is empty; give a file with a header row and data rows.")
     sep = _sniff_delimiter(path, text)
@@ -84,6 +130,13 @@ def read_text_table(path: Path) -> pd.DataFrame:
         raise InputError(f"{path} cannot be parsed as a table ({str(exc).strip()}); check "
                          "that every row has as many fields as the header.") from None
     df.columns = [str(c).strip() for c in df.columns]
+    first = next(ln for ln in text.splitlines() if ln.strip())
+    header = next(csv.reader(io.StringIO(first), delimiter=sep))
+    names = [h.strip() for h in header]
+    dup = next((h for i, h in enumerate(names) if h and h in names[:i]), None)
+    if dup is not None:
+        raise InputError(f"{path}: the header {dup!r} appears more than once; rename or remove "
+                         "the extra column.")
     if df.empty:
         raise InputError(f"{path} has a header but no data rows.")
     return df.apply(lambda s: s.str.strip())
@@ -184,29 +237,92 @@ def read_casts(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataF
     return read_table(path, CASTS, mapping, "--columns")
 
 
+def _numbers(df: pd.DataFrame, col: str) -> pd.Series:
+    return pd.to_numeric(df[col].astype(str).str.strip().replace("", np.nan), errors="coerce")
+
+
 def read_ice(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataFrame:
-    """Read a monthly ice file (see :data:`coldindex.schema.ICE`)."""
-    return read_table(path, ICE, mapping, "--ice-columns")
+    """Read a monthly ice file (see :data:`coldindex.schema.ICE`).
+
+    Years must lie in :data:`OBSERVED_YEARS` and values be of plausible size
+    (finite, ``|x| <=`` :data:`MAX_ABS_VALUE`); the row is named otherwise.
+    """
+    df = read_table(path, ICE, mapping, "--ice-columns")
+    _check_years(_numbers(df, "year"), df["row"], path, "year", OBSERVED_YEARS)
+    _check_magnitude(_numbers(df, "ice"), df["row"], path, "ice")
+    return df
 
 
 def read_trajectories(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataFrame:
-    """Read a trajectories file (see :data:`coldindex.schema.TRAJECTORIES`)."""
-    return read_table(path, TRAJECTORIES, mapping, "--trajectory-columns")
+    """Read a trajectories file (see :data:`coldindex.schema.TRAJECTORIES`).
+
+    Years must lie in :data:`TRAJECTORY_YEARS`, values be of plausible size, and
+    model and scenario names be non-blank and differ from the summary rows the
+    projection adds (:data:`SUMMARY_ROW_NAMES`).
+    """
+    df = read_table(path, TRAJECTORIES, mapping, "--trajectory-columns")
+    _check_years(_numbers(df, "year"), df["row"], path, "year", TRAJECTORY_YEARS)
+    _check_magnitude(_numbers(df, "value"), df["row"], path, "value")
+    _check_names(df, path)
+    return df
+
+
+def _check_names(df: pd.DataFrame, path: object) -> None:
+    for col in ("model", "scenario"):
+        if col not in df.columns:
+            continue
+        names = df[col].astype(str).str.strip()
+        blank = names.eq("") | names.str.lower().isin(["nan", "none", "null"])
+        if blank.any():
+            r = df["row"][blank].iloc[0] if "row" in df else "?"
+            raise InputError(f"{path}, row {r}: column {col!r} is blank; name every {col}.")
+        clash = names.str.lower().isin(SUMMARY_ROW_NAMES)
+        if clash.any():
+            r = df["row"][clash].iloc[0] if "row" in df else "?"
+            raise InputError(f"{path}, row {r}: the {col} name {names[clash].iloc[0]!r} is "
+                             "reserved for the summary rows coldindex adds; rename it.")
+
+
+def check_trajectories(traj: pd.DataFrame, source: str) -> None:
+    """Refuse trajectories no projection can use: blank or reserved names, a model all missing.
+
+    Parameters
+    ----------
+    traj
+        ``model``, ``scenario``, ``year``, ``value`` (from CSV files or the gridded path).
+    source
+        The files, for messages.
+    """
+    _check_names(traj.assign(row="?") if "row" not in traj else traj, source)
+    _check_years(pd.to_numeric(traj["year"], errors="coerce"), pd.Series(["?"] * len(traj),
+                 index=traj.index), source, "year", TRAJECTORY_YEARS)
+    values = pd.to_numeric(traj["value"], errors="coerce")
+    for (model, scenario), g in values.groupby([traj["model"], traj["scenario"]]):
+        if not np.isfinite(g.to_numpy(float)).any():
+            raise InputError(f"{source}: model {model!r} under scenario {scenario!r} holds no "
+                             "finite value (all missing); remove it or fix its data.")
 
 
 def read_domain(path: Path) -> Domain:
     """Read a domain polygon from GeoJSON (one Polygon or MultiPolygon, lon/lat)."""
     _check_file(path)
     try:
-        obj = json.loads(path.read_text(encoding="utf-8"))
+        obj = json.loads(_read_bytes(path).decode("utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise InputError(f"{path} is not valid GeoJSON ({exc}).") from None
+    except RecursionError:
+        raise InputError(f"{path} is nested too deeply to be a GeoJSON polygon; give one "
+                         "Polygon or MultiPolygon.") from None
     if not isinstance(obj, dict):
         raise InputError(f"{path} is not a GeoJSON object.")
     try:
         return domain_from_geojson(obj)
     except InputError as exc:
         raise InputError(f"{path}: {exc}") from None
+    except (ValueError, TypeError, KeyError, IndexError, AttributeError) as exc:
+        raise InputError(f"{path} is not a usable survey domain ({type(exc).__name__}); give one "
+                         "Polygon or MultiPolygon of the survey area in lon/lat, smaller than "
+                         "a hemisphere.") from None
 
 
 def read_bathymetry(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -293,15 +409,23 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
                              f"with {option} {col}=YOUR_HEADER (columns present: "
                              f"{', '.join(map(str, df.columns))}).")
     years = pd.to_numeric(df["year"], errors="coerce")
-    if years.isna().any() or (years != years.round()).any():
-        bad = int(np.flatnonzero(years.isna() | (years != years.round()))[0]) + 1
+    with np.errstate(invalid="ignore"):
+        bad_year = years.isna() | ~np.isfinite(years) | (years != years.round())
+    if bad_year.any():
+        bad = int(np.flatnonzero(bad_year)[0]) + 1
         raise InputError(f"{path}, data row {bad}: column 'year' needs a whole year, got: "
                          f"{df['year'].iloc[bad - 1]!r}.")
-    vals = pd.to_numeric(df[value].replace("", np.nan), errors="coerce")
-    bad_mask = vals.isna() & df[value].astype(str).str.strip().ne("")
+    _check_years(years, pd.Series(np.arange(1, len(df) + 1), index=df.index), path, "year",
+                 OBSERVED_YEARS)
+    text = df[value].astype(str).str.strip()
+    blank = text.eq("") | text.str.lower().isin(["na", "nan", "null", "none", "-"])
+    vals = pd.to_numeric(text.where(~blank), errors="coerce")
+    with np.errstate(invalid="ignore"):
+        bad_mask = ~blank & (vals.isna() | ~(vals.abs() <= MAX_ABS_VALUE))
     if bad_mask.any():
         bad = int(np.flatnonzero(bad_mask)[0]) + 1
-        raise InputError(f"{path}, data row {bad}: column {value!r} needs a number, got: "
+        raise InputError(f"{path}, data row {bad}: column {value!r} needs a finite number of "
+                         f"plausible size (|x| <= {MAX_ABS_VALUE:g}) or a blank, got: "
                          f"{df[value].iloc[bad - 1]!r}.")
     out = pd.DataFrame({"year": years.astype(int), "value": vals.astype(float)})
     dup = out["year"][out["year"].duplicated()]
@@ -309,7 +433,8 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
         raise InputError(f"{path}: year {int(dup.iloc[0])} appears more than once; keep one row "
                          "a year.")
     if f"{value}_sd" in df.columns:
-        out["sd"] = pd.to_numeric(df[f"{value}_sd"].replace("", np.nan), errors="coerce")
+        sd = pd.to_numeric(df[f"{value}_sd"].replace("", np.nan), errors="coerce")
+        out["sd"] = sd.where(np.isfinite(sd) & (sd >= 0))  # a damaged SD is no SD
     return out.sort_values("year").reset_index(drop=True)
 
 
@@ -317,10 +442,25 @@ def read_cuts(path: Path) -> dict:
     """Read a ``cuts.json`` file as a dictionary."""
     _check_file(path)
     try:
-        obj = json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path} is not valid JSON ({exc}); write it with coldindex "
-                         "classify.") from None
+        obj = json.loads(_read_bytes(path).decode("utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError) as exc:
+        raise InputError(f"{path} is not valid JSON ({type(exc).__name__}); write it with "
+                         "coldindex classify.") from None
     if not isinstance(obj, dict):
         raise InputError(f"{path} is not a cuts object; write it with coldindex classify.")
+    for key in ("low", "high"):
+        v = obj.get(key)
+        if key in obj and (isinstance(v, bool) or not isinstance(v, (int, float))
+                           or not np.isfinite(v) or abs(v) > MAX_ABS_VALUE):
+            raise InputError(f"{path}: {key!r} needs a finite number, got: {v!r}; write the file "
+                             "with coldindex classify.")
+    if isinstance(obj.get("low"), (int, float)) and isinstance(obj.get("high"), (int, float)) \
+            and obj["low"] > obj["high"]:
+        raise InputError(f"{path}: 'low' ({obj['low']}) is above 'high' ({obj['high']}); write "
+                         "the file with coldindex classify.")
+    if "column" in obj and not isinstance(obj["column"], str):
+        raise InputError(f"{path}: 'column' needs a column name, got: {obj['column']!r}.")
+    if "direction" in obj and obj["direction"] not in ("lower", "higher"):
+        raise InputError(f"{path}: 'direction' needs to be lower or higher, got: "
+                         f"{obj['direction']!r}.")
     return obj

@@ -1,7 +1,19 @@
-"""Atomic writers: each file goes to a temporary name beside it, then ``os.replace``.
+"""Safe writers: every file is staged under a unique temporary name, then ``os.replace``d.
 
-An interrupted run never leaves a half-written output. :func:`prepare_out_dir`
-refuses an output path that is a file before any work starts.
+Rules that keep outputs honest and inputs safe:
+
+* a temporary file lives in a private folder (``tempfile.mkdtemp``, mode 0700, a unique
+  name per run) beside its target, so no temporary name can be guessed, planted or
+  followed as a symbolic link;
+* a target that is a symbolic link or a folder is refused, never written through;
+* :class:`OutputSet` stages every output of one command and replaces the targets only
+  when all of them are written, then writes a small completion manifest
+  (:data:`MANIFEST_NAME`) last, so an incomplete set is detectable;
+* :func:`refuse_overwriting_inputs` refuses, before any work, an output that resolves
+  (real path or inode) to one of the command's inputs;
+* operating-system failures (disk full, read-only file system, permission denied) and
+  library write failures become :class:`~coldindex.errors.OutputError` sentences naming
+  the file.
 """
 
 from __future__ import annotations
@@ -9,8 +21,9 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import shutil
 import tempfile
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
@@ -21,8 +34,11 @@ import xarray as xr
 
 from coldindex._version import __version__
 from coldindex.domain import Domain, Grid
-from coldindex.errors import OutputError
+from coldindex.errors import ColdindexError, OutputError, os_error_sentence
 from coldindex.schema import threshold_label
+
+MANIFEST_NAME = "complete.json"
+"""Completion manifest a single command writes last into its output folder."""
 
 
 def prepare_out_dir(path: Path) -> Path:
@@ -33,26 +49,113 @@ def prepare_out_dir(path: Path) -> Path:
     try:
         path.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise OutputError(f"Cannot create the output folder {path} ({exc.strerror}).") from None
+        raise OutputError(os_error_sentence(exc, "creating the output folder", path)) from None
     return path
+
+
+def same_file(a: Path, b: Path) -> bool:
+    """True when two paths name the same file (real path, or device and inode)."""
+    try:
+        if os.path.realpath(a) == os.path.realpath(b):
+            return True
+        sa, sb = os.stat(a), os.stat(b)
+    except (OSError, ValueError):
+        return False
+    return (sa.st_dev, sa.st_ino) == (sb.st_dev, sb.st_ino)
+
+
+def refuse_overwriting_inputs(targets: Iterable[Path], inputs: Iterable[Path | None],
+                              option: str = "--out") -> None:
+    """Refuse outputs that would replace an input, or that are links or folders.
+
+    Runs before any work and creates nothing. Inputs that merely sit in the output
+    folder are fine; only a target resolving to an input (same real path, or same
+    device and inode, e.g. a hard link) is refused.
+
+    Parameters
+    ----------
+    targets
+        Every file the command would write.
+    inputs
+        Every file the command reads (None entries are skipped).
+    option
+        The option naming the output folder, for messages.
+    """
+    ins = [Path(p) for p in inputs if p is not None]
+    for t in targets:
+        if t.is_symlink():
+            raise OutputError(f"{t} is a symbolic link; coldindex never writes through links, "
+                              f"so remove it or choose another {option}.")
+        if t.is_dir():
+            raise OutputError(f"{t} is a folder where coldindex writes a file; move it away "
+                              f"or choose another {option}.")
+        for p in ins:
+            if same_file(t, p):
+                raise OutputError(f"Writing {t} would overwrite the input {p}; choose another "
+                                  f"{option} (inputs are never replaced).")
+
+
+def _fail(exc: BaseException, target: Path) -> OutputError:
+    if isinstance(exc, OSError):
+        return OutputError(os_error_sentence(exc, "writing", target))
+    detail = str(exc).strip().splitlines()[0][:160] if str(exc).strip() else ""
+    return OutputError(f"Writing {target} failed ({type(exc).__name__}"
+                       f"{': ' + detail if detail else ''}); check the free space and the "
+                       "permissions of the folder, then run again.")
+
+
+def _private_dir(parent: Path, prefix: str) -> Path:
+    try:
+        parent.mkdir(parents=True, exist_ok=True)
+        return Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
+    except OSError as exc:
+        raise OutputError(os_error_sentence(exc, "writing into", parent)) from None
+
+
+def _check_target(target: Path) -> None:
+    """Refuse a target that is a symbolic link or a folder."""
+    if target.is_symlink():
+        raise OutputError(f"{target} is a symbolic link; coldindex never writes through links, "
+                          "so remove it and run again.")
+    if target.is_dir():
+        raise OutputError(f"{target} is a folder where coldindex writes a file; move it away "
+                          "and run again.")
+
+
+def _replace(src: Path, target: Path) -> None:
+    """Move a finished file onto its target without following a link there."""
+    _check_target(target)
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(src, 0o666 & ~umask)
+    os.replace(src, target)
 
 
 @contextmanager
 def atomic_path(target: Path) -> Iterator[Path]:
-    """Yield a temporary path beside ``target``; move it into place on success."""
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    os.close(fd)
-    tmp_path = Path(tmp)
+    """Yield a temporary path beside ``target``; move it into place on success.
+
+    The temporary lives in a private, uniquely named folder beside the target, so
+    it can be neither guessed nor replaced by a link; the target itself is refused
+    when it is a link or a folder. Any failure removes the temporary and leaves
+    the target as it was; operating-system and library errors become
+    :class:`~coldindex.errors.OutputError`.
+    """
+    _check_target(target)
+    tmpdir = _private_dir(target.parent, f".{target.name}.")
     try:
-        yield tmp_path
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp_path, 0o666 & ~umask)
-        os.replace(tmp_path, target)
+        tmp_path = tmpdir / target.name
+        try:
+            yield tmp_path
+            if not tmp_path.is_file() or tmp_path.is_symlink():
+                raise OutputError(f"Writing {target} produced no file; run again.")
+            _replace(tmp_path, target)
+        except (ColdindexError, MemoryError, KeyboardInterrupt, GeneratorExit):
+            raise
+        except Exception as exc:
+            raise _fail(exc, target) from None
     finally:
-        if tmp_path.exists():
-            tmp_path.unlink()
+        shutil.rmtree(tmpdir, ignore_errors=True)
 
 
 def _write_with(target: Path, write: Callable[[Path], Any]) -> Path:
@@ -91,16 +194,104 @@ def write_figure(fig: Any, target: Path, close: bool = True) -> Path:
 
     fmt = target.suffix.lstrip(".").lower()
     meta = {"Software": None} if fmt == "png" else {"Date": None, "Creator": None}
-    with matplotlib.rc_context({"svg.hashsalt": "coldindex", "svg.fonttype": "none"}):
-        _write_with(target, lambda p: fig.savefig(p, format=fmt, dpi=130, metadata=meta))
-    if close:
-        plt.close(fig)
+    try:
+        with matplotlib.rc_context({"svg.hashsalt": "coldindex", "svg.fonttype": "none"}):
+            _write_with(target, lambda p: fig.savefig(p, format=fmt, dpi=130, metadata=meta))
+    finally:
+        if close:
+            plt.close(fig)
     return target
 
 
 def write_bytes(data: bytes, target: Path) -> Path:
     """Write raw bytes atomically."""
     return _write_with(target, lambda p: p.write_bytes(data))
+
+
+class OutputSet:
+    """Stage every output of one command; replace the targets only when all are written.
+
+    Used as a context manager around a command's writes: :attr:`dir` is a private
+    staging folder inside ``out`` and :meth:`path` the staging path of one output.
+    On a clean exit, once every named output is present, the old manifest is
+    removed, every staged file replaces its target, and a new manifest
+    (:data:`MANIFEST_NAME`, with each file's SHA-256) is written last. On any failure
+    the staging folder is removed and the targets stay as they were.
+
+    Parameters
+    ----------
+    out
+        The output folder (created by :func:`prepare_out_dir` beforehand).
+    command
+        The command's name, recorded in the manifest.
+    names
+        Every output's file name, in the order they are listed.
+    """
+
+    def __init__(self, out: Path, command: str, names: Sequence[str]) -> None:
+        self.out = out
+        self.command = command
+        self.names = list(names)
+        self.written: list[Path] = []
+        self._dir: Path | None = None
+
+    @property
+    def targets(self) -> list[Path]:
+        """Every file the set writes, its manifest included."""
+        return output_targets(self.out, self.names)
+
+    @property
+    def dir(self) -> Path:
+        """The private staging folder."""
+        assert self._dir is not None, "use OutputSet as a context manager"
+        return self._dir
+
+    def __enter__(self) -> OutputSet:
+        prepare_out_dir(self.out)
+        self._dir = _private_dir(self.out, ".coldindex-staging-")
+        return self
+
+    def path(self, name: str) -> Path:
+        """The staging path of output ``name``."""
+        assert name in self.names, f"{name} is not among the declared outputs"
+        return self.dir / name
+
+    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> None:
+        try:
+            if exc_type is None:
+                self._commit(self.dir)
+        finally:
+            shutil.rmtree(self.dir, ignore_errors=True)
+
+    def _commit(self, staging: Path) -> None:
+        missing = [n for n in self.names if not (staging / n).is_file()]
+        if missing:
+            raise OutputError(f"{self.out / missing[0]} was not written; nothing was replaced, "
+                              "run again.")
+        hashes = {n: sha256_file(staging / n) for n in self.names}
+        manifest = self.out / MANIFEST_NAME
+        for target in self.targets:
+            _check_target(target)  # nothing is replaced yet
+        old = staging / ".previous-manifest"
+        replaced = 0
+        try:
+            if manifest.exists():  # until the new one exists the set reads incomplete
+                os.replace(manifest, old)
+            for n in self.names:
+                _replace(staging / n, self.out / n)
+                replaced += 1
+        except OSError as exc:
+            if replaced == 0 and old.exists():  # nothing changed: the old set stays complete
+                os.replace(old, manifest)
+            raise OutputError(os_error_sentence(exc, "writing", self.out / n)) from None
+        write_json({"tool": "coldindex", "version": __version__, "command": self.command,
+                    "outputs_sha256": hashes}, manifest)
+        self.written = [self.out / n for n in self.names]
+
+
+def output_targets(out: Path, names: Sequence[str]) -> list[Path]:
+    """The files a command writes into ``out``, its completion manifest included."""
+    return [out / n for n in (*names, MANIFEST_NAME)]
 
 
 def sha256_file(path: Path) -> str:
@@ -192,3 +383,18 @@ def fields_dataset(years: list[int], estimate: np.ndarray, sd: np.ndarray,
         "source": f"coldindex {__version__}",
         "comment": "Decision support only; defer to the responsible agency's reviewed "
                    "assessment."})
+
+
+def plan_outputs(out: Path, command: str, names: Sequence[str],
+                 inputs: Iterable[Path | None], option: str = "--out") -> OutputSet:
+    """Check a single command's outputs before any work and return their :class:`OutputSet`.
+
+    Refuses an output folder that is a file, and any output that is a link, a folder,
+    or the same file as one of ``inputs``; creates nothing (the folder is created when
+    the set is entered, after the work).
+    """
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"The output path {out} is a file; give a folder (it is created "
+                          "when missing).")
+    refuse_overwriting_inputs(output_targets(out, names), inputs, option)
+    return OutputSet(out, command, names)

@@ -24,6 +24,16 @@ DIVERGING = LinearSegmentedColormap.from_list(
     "coldindex_diverging", ["#1f4e79", "#6a9ec6", "#f2f2f2", "#f0b46e", "#a4500f"])
 
 
+def _plain(text: object) -> str:
+    """Text from data, shown as written: ``$`` escaped so mathtext never reads it.
+
+    A leading underscore (which hides a legend entry) is kept visible by a space.
+    SVG output escapes XML itself; this guards the mathtext parser only.
+    """
+    out = str(text).replace("$", r"\$")
+    return " " + out if out.startswith("_") else out
+
+
 def skill_figure(table: pd.DataFrame, q_threshold: float = 0.1) -> Figure:
     """Correlation by predictor and lag, annotated; q < threshold outlined, others hatched.
 
@@ -58,7 +68,7 @@ def skill_figure(table: pd.DataFrame, q_threshold: float = 0.1) -> Figure:
                         color="white" if abs(r) > 0.6 else "black",
                         fontweight="bold" if sig else "normal")
     ax.set_xticks(range(len(lags)), [f"lag {lag}" for lag in lags])
-    ax.set_yticks(range(len(preds)), [p.replace("ice_", "") for p in preds])
+    ax.set_yticks(range(len(preds)), [_plain(p.replace("ice_", "")) for p in preds])
     ax.set_title(f"Correlation of winter ice with the target\n(outlined: q < {q_threshold}; "
                  "hatched: not significant)", fontsize=10)
     fig.colorbar(im, ax=ax, label="correlation r", shrink=0.8)
@@ -98,7 +108,7 @@ def hindcast_figure(table: pd.DataFrame, outlook: dict, label: str) -> Figure:
                 fmt="D", color=WARM, ms=7, capsize=4,
                 label=f"outlook {outlook['year']} ({outlook['confidence']:.0%} interval)")
     ax.set_xlabel("year")
-    ax.set_ylabel(label)
+    ax.set_ylabel(_plain(label))
     ax.legend(fontsize=8, ncol=3, loc="upper center", bbox_to_anchor=(0.5, -0.18),
               frameon=False)
     ax.grid(alpha=0.3)
@@ -133,13 +143,13 @@ def projection_figure(projection: pd.DataFrame, emergence: pd.DataFrame) -> Figu
             g = g.groupby("year")["p_cold"].mean()
             colour = shades[k % len(shades)]
             ax.plot(g.index, g.to_numpy(), styles[k % len(styles)], color=colour, lw=1.4,
-                    label=model)
+                    label=_plain(model))
             row = emergence[(emergence["scenario"] == scen) & (emergence["model"] == model)]
             if len(row) and row["stopped"].iloc[0]:
                 sy = int(row["stop_year"].iloc[0])
                 ax.axvline(sy, color=colour, lw=0.8, ls=styles[k % len(styles)], alpha=0.7)
                 ax.plot([sy], [g.get(sy, np.nan)], "v", color=colour, ms=6)
-        ax.set_title(f"scenario {scen}", fontsize=10)
+        ax.set_title(_plain(f"scenario {scen}"), fontsize=10)
         ax.set_xlabel("year")
         ax.grid(alpha=0.3)
     axes[0][0].set_ylabel("probability of a cold year")
@@ -194,7 +204,7 @@ def series_figure(indices: pd.DataFrame, columns: list[tuple[str, str]],
             for _, r in regimes[regimes["method"] == "stars"].iterrows():
                 ax.hlines(r["mean"], r["start"] - 0.5, r["end"] + 0.5, color=WARM, lw=2.0,
                           linestyles="--", zorder=4)
-        ax.set_ylabel(label)
+        ax.set_ylabel(_plain(label))
         ax.grid(alpha=0.3)
     axes[0, 0].legend(fontsize=8, ncol=4, frameon=False, loc="upper left")
     axes[-1, 0].set_xlabel("year")

@@ -28,6 +28,16 @@ code{background:#f4f4f4;padding:0 .2em}
 """
 
 
+def escape(text: object) -> str:
+    """Any text from data or settings, made inert in HTML.
+
+    ``<``, ``>``, ``&`` and both quotes are escaped (no element or attribute can be
+    opened), and braces too, so a value can never form a ``{{figure:NAME}}``
+    placeholder.
+    """
+    return html.escape(str(text), quote=True).replace("{", "&#123;").replace("}", "&#125;")
+
+
 def data_uri(png: bytes) -> str:
     """Base64 data URI of a PNG image."""
     return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
@@ -42,9 +52,9 @@ def table_html(df: pd.DataFrame, digits: int = 3, max_rows: int = 60) -> str:
             if v != v:
                 return ""
             return f"{v:,.0f}" if abs(v) >= 1000 else f"{v:.{digits}g}"
-        return html.escape(str(v)) if v is not None and v is not pd.NA else ""
+        return escape(v) if v is not None and v is not pd.NA else ""
 
-    head = "".join(f"<th>{html.escape(str(c))}</th>" for c in shown.columns)
+    head = "".join(f"<th>{escape(c)}</th>" for c in shown.columns)
     body = "".join("<tr>" + "".join(f"<td>{fmt(v)}</td>" for v in row) + "</tr>"
                    for row in shown.itertuples(index=False, name=None))
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
@@ -62,6 +72,8 @@ def render(title: str, headlines: Sequence[str], sections: Sequence[tuple[str, s
         Generated headline sentences.
     sections
         ``(heading, html)`` pairs; ``{{figure:NAME}}`` inside is replaced by that figure.
+        The html is trusted markup: build it with :func:`escape` and :func:`table_html`
+        around every value from data or settings.
     figures
         PNG bytes by name.
     cautions
@@ -76,16 +88,16 @@ def render(title: str, headlines: Sequence[str], sections: Sequence[tuple[str, s
     """
     parts = [
         "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
-        f"<title>{html.escape(title)}</title><style>{STYLE}</style></head><body>",
-        f"<h1>{html.escape(title)}</h1>",
-        f'<p class="caution">{html.escape(cautions)}</p>',
+        f"<title>{escape(title)}</title><style>{STYLE}</style></head><body>",
+        f"<h1>{escape(title)}</h1>",
+        f'<p class="caution">{escape(cautions)}</p>',
         '<h2>Headlines</h2><ul class="headline">',
-        *[f"<li>{html.escape(h)}</li>" for h in headlines], "</ul>",
+        *[f"<li>{escape(h)}</li>" for h in headlines], "</ul>",
     ]
     for heading, body in sections:
         for name, png in figures.items():
             body = body.replace("{{figure:" + name + "}}",
-                                f'<img alt="{html.escape(name)}" src="{data_uri(png)}">')
-        parts.append(f"<h2>{html.escape(heading)}</h2>{body}")
+                                f'<img alt="{escape(name)}" src="{data_uri(png)}">')
+        parts.append(f"<h2>{escape(heading)}</h2>{body}")
     parts += [f"<h2>Provenance</h2>{provenance}", "</body></html>"]
     return "\n".join(parts) + "\n"
