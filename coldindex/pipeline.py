@@ -225,8 +225,8 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
     IndexRun
         Results, notes and the files written.
     """
-    writers.refuse_overwriting_inputs(writers.output_targets(out, INDEX_OUTPUTS),
-                                      [casts_path, domain_path, bathymetry_path])
+    outputs = writers.plan_outputs(out, "index", INDEX_OUTPUTS,
+                                   [casts_path, domain_path, bathymetry_path])
     frozen = _frozen(out)
     check = run_check(casts_path, mapping, domain_path, options, previous_out=out, derive=True)
     assert check.domain is not None
@@ -252,8 +252,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
     for name, p in (("domain", domain_path), ("bathymetry", bathymetry_path)):
         if p is not None:
             inputs[name] = {"path": str(p), "sha256": writers.sha256_file(p)}
-    writers.prepare_out_dir(out)
-    with writers.OutputSet(out, "index", INDEX_OUTPUTS) as stage:
+    with outputs as stage:
         written, frozen_out = _write_index_outputs(stage.dir, check, result, grid, options)
         provenance = {
             "tool": "coldindex", "version": __version__, "command": "index",
