@@ -125,11 +125,16 @@ def test_gridded_cli_equals_csv_path(files, tmp_path: Path):
     pd.DataFrame({"year": YEARS_OBS, "bottom_mean_c": 0.3 + 0.02 * (YEARS_OBS - 2001)}).to_csv(
         obs, index=False)
     runner = CliRunner()
-    r1 = runner.invoke(app, ["project", str(d / "model.nc"), "--observed", str(obs),
-                             "--value", "bottom_mean_c", "--out", str(tmp_path / "g"),
-                             "--fields", str(d / "fields.nc"), "--var", "tob",
-                             "--adjust", "delta"])
+    args = ["project", str(d / "model.nc"), "--observed", str(obs), "--value", "bottom_mean_c",
+            "--fields", str(d / "fields.nc"), "--var", "tob", "--adjust", "delta"]
+    # The per-cell adjustment rests on 8 shared years: refused unless explicitly accepted.
+    r0 = runner.invoke(app, [*args, "--out", str(tmp_path / "short")])
+    assert r0.exit_code == 2 and "overlap in 8 years" in " ".join(r0.output.split())
+    r1 = runner.invoke(app, [*args, "--out", str(tmp_path / "g"), "--calibration", "2001-2008",
+                             "--short-calibration"])
     assert r1.exit_code == 0, r1.output
+    em = pd.read_csv(tmp_path / "g" / "emergence.csv")
+    assert em["short_calibration"].all() and (em["calibration_years"] == 8).all()
     tr = trajectories_from_netcdf([d / "model.nc"], d / "fields.nc", "bottom_mean_c", "tob",
                                   "6-8", "delta", None)
     csv = tmp_path / "traj.csv"
