@@ -378,6 +378,8 @@ def shifts(
     methods = {"both": ("stars", "pelt"), "stars": ("stars",), "pelt": ("pelt",)}
     if method not in methods:
         raise ColdindexError(f"--method needs to be stars, pelt or both, got: {method!r}.")
+    if seed < 0:
+        raise ColdindexError(f"--seed needs to be a whole number >= 0, got: {seed}.")
     opts = ShiftOptions(cutoff=cutoff, alpha=alpha, huber=huber, prewhiten=prewhiten,
                         subsample=subsample, min_size=min_size, boot=boot, seed=seed,
                         null_window=null_window)
@@ -573,6 +575,7 @@ def project(
     from coldindex import classify as cl
     from coldindex import project as pj
     from coldindex.io.readers import (
+        check_netcdf,
         check_trajectories,
         read_domain,
         read_series,
@@ -583,6 +586,9 @@ def project(
     from coldindex.report.figures import projection_figure
 
     refuse_repeated_files(trajectories, "TRAJECTORIES")
+    if fields is not None:  # the gridded path: every file must open as NetCDF
+        for p in (fields, *trajectories):
+            check_netcdf(p, "--fields" if p == fields else "TRAJECTORIES")
     outputs = plan_outputs(out, "project", ("projection.csv", "emergence.csv",
                                             "projection.png"),
                            (*trajectories, observed, cuts, domain, fields))

@@ -21,6 +21,7 @@ from coldindex.errors import InputError
 
 SENTINELS = (-99999.0, -9999.0, -999.0, 999.0, 9999.0, 99999.0)
 TEMPERATURE_SENTINELS = (-99.0, -99.9, 99.0, 99.9)
+DATE_SLACK_DAYS = 92  # a survey may straddle the new year by up to a quarter (no source)
 REQUIRED = ("year", "lat", "lon", "bottom_c")
 NUMERIC = ("year", "lat", "lon", "bottom_c", "depth_m", "salinity", "surface_c")
 VALUE_COLUMNS = ("station", "lat", "lon", "bottom_c", "date", "depth_m", "salinity", "surface_c")
@@ -190,6 +191,14 @@ def run_qc(raw: pd.DataFrame, domain: Domain | None = None, *, source: str = "ca
                                      | df["year"].lt(1000) | df["year"].gt(3000))
     mark(bad_year, "non_numeric", "year = " + df["year"].astype(str) + " is not a year")
     df.loc[bad_year, "year"] = np.nan
+    # A date more than a quarter outside its labelled year is a typo, not a survey that
+    # straddles the new year (whose casts lie within weeks of the label's year).
+    when = pd.to_datetime(df["date"].where(df["date"].str.len() > 0), errors="coerce",
+                          format="mixed")
+    start = pd.to_datetime(df["year"].astype("Int64").astype(str) + "-01-01", errors="coerce")
+    days = (when - start).dt.days
+    mark(days.lt(-DATE_SLACK_DAYS) | days.gt(365 + DATE_SLACK_DAYS), "date_outside_year",
+         "date " + df["date"] + " lies outside year " + df["year"].astype("Int64").astype(str))
 
     lat_ok = df["lat"].notna()
     if lat_ok.sum() > 0:

@@ -148,6 +148,8 @@ QC_FLAGS: dict[str, str] = {
     "duplicate_conflict": "same year and station or position as another cast but different "
     "values; all copies excluded",
     "outside_domain": "position outside the survey domain",
+    "date_outside_year": "the date lies more than a quarter (92 days) outside the labelled "
+    "survey year",
 }
 
 _STAT_SUFFIXES = {
@@ -491,9 +493,23 @@ REVISIONS = Table(
     ),
 )
 
+MANIFEST = Table(
+    "complete.json",
+    "Completion manifest a single command (`check --out`, `index`, `classify`, `shifts`, "
+    "`skill`, `project`) writes last into its output folder, after every output replaced "
+    "the old one; while it is missing the folder's set of outputs may be incomplete.",
+    (
+        Column("command", "-", "The command that wrote the set.", "str"),
+        Column("version", "-", "coldindex version.", "str"),
+        Column("outputs_sha256", "-", "SHA-256 of each output of the set, by file name.",
+               "dict"),
+    ),
+)
+
 OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), FIELDS_VARIABLES, CLASSES,
                                     CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK,
-                                    PROJECTION, EMERGENCE, COVARIATES, REVISIONS)
+                                    PROJECTION, EMERGENCE, COVARIATES, REVISIONS,
+                                    MANIFEST)
 INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES)
 
 

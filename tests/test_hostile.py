@@ -192,6 +192,8 @@ SERIES_SPOILS: dict[str, tuple[object, str]] = {
     "value_1e308": (_series_rows(bad_value="1e308").encode(), "plausible size"),
     "value_minus_1e308": (_series_rows(bad_value="-1e308").encode(), "plausible size"),
     "value_text": (_series_rows(bad_value="abc").encode(), "finite number"),
+    "all_blank": ((SERIES_HEAD + "".join(f"{1990 + i},190,,0.1,5\n" for i in range(30))).encode(),
+                  "holds no value"),
     "duplicate_year": ((SERIES_HEAD + "2001,190,1,0.1,5\n2001,190,2,0.1,5\n").encode(),
                        "more than once"),
     "duplicate_header": (b"year,bottom_mean_c,bottom_mean_c\n2001,1,2\n2002,1,2\n",
@@ -267,6 +269,21 @@ def test_spoiled_casts(good: Path, tmp_path: Path, command: str, spoil: str):
         assert left_behind(out) == ["complete.json", "qc.csv"]  # the flags, as asked
     else:
         assert left_behind(out) == []
+
+
+def test_casts_dated_in_another_year_are_flagged(good: Path, tmp_path: Path):
+    casts = synthetic_casts(years=(2001, 2002), n_side=6)
+    casts.loc[3, "date"] = "1999-07-03"  # a typo of the year: not used, listed
+    casts.loc[4, "date"] = "2000-12-20"  # a survey of 2001 that began in December: used
+    path = tmp_path / "casts.csv"
+    casts.to_csv(path, index=False)
+    code, text = invoke(["check", path, "--out", tmp_path / "out", "--domain",
+                         good / "domain.geojson", "--min-casts", "20"])
+    assert code == 0, text
+    qc = pd.read_csv(tmp_path / "out" / "qc.csv").set_index("row")
+    assert qc.loc[4, "flag"] == "date_outside_year" and "1999-07-03" in qc.loc[4, "detail"]
+    assert qc.loc[5, "flag"] == "ok"
+    assert (qc["flag"] != "ok").sum() == 1
 
 
 ICE_HEAD = "year,month,ice\n"
@@ -452,6 +469,8 @@ OPTION_CASES: dict[str, tuple[str, list, str]] = {
     "project_p_stop": ("project", ["--p-stop", "2"], "--p-stop"),
     "project_adjust": ("project", ["--adjust", "magic"], "--adjust"),
     "shifts_method": ("shifts", ["--method", "guess"], "--method"),
+    "shifts_seed_negative": ("shifts", ["--seed", "-1"], "--seed"),
+    "project_fields_not_netcdf": ("project", ["--fields", "SERIES"], "cannot be read as NetCDF"),
 }
 
 
@@ -469,6 +488,7 @@ def test_option_out_of_bounds(good: Path, tmp_path: Path, case: str):
                     "bottom_mean_c", "--out", out],
         "shifts": ["shifts", good / "series.csv", "--value", "bottom_mean_c", "--out", out],
     }[command]
+    extra = [good / "series.csv" if a == "SERIES" else a for a in extra]
     code, text = invoke([*base, *extra])
     refused(code, text, needle, exit_code=2)
     assert left_behind(out) == []

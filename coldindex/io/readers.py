@@ -373,6 +373,17 @@ def read_bathymetry(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         return lon_axis, lat_axis, values
 
 
+def check_netcdf(path: Path, option: str) -> None:
+    """Refuse a file that does not open as NetCDF, before any work."""
+    _check_file(path)
+    try:
+        ds = xr.open_dataset(path)
+    except Exception as exc:  # netCDF backends raise many error types
+        raise InputError(f"{path} ({option}) cannot be read as NetCDF ({type(exc).__name__}); "
+                         "give a complete NetCDF file.") from None
+    ds.close()
+
+
 def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None,
                 option: str = "--columns") -> pd.DataFrame:
     """Read a yearly series: ``year`` and the value column (and its ``_sd`` when present).
@@ -427,6 +438,9 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
         raise InputError(f"{path}, data row {bad}: column {value!r} needs a finite number of "
                          f"plausible size (|x| <= {MAX_ABS_VALUE:g}) or a blank, got: "
                          f"{df[value].iloc[bad - 1]!r}.")
+    if not vals.notna().any():
+        raise InputError(f"{path}: column {value!r} holds no value (every row is blank); "
+                         "give a series with values.")
     out = pd.DataFrame({"year": years.astype(int), "value": vals.astype(float)})
     dup = out["year"][out["year"].duplicated()]
     if len(dup):
