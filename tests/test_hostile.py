@@ -979,3 +979,102 @@ def test_killed_updates_are_recovered(release, tmp_path: Path):
     prev, notes = _previous_release(out, None)  # what the next run compares with
     assert prev == out / "release-3"
     assert "release-3 is newer and complete" in notes[0]
+
+
+# --------------------------------------------------------------------------------------
+# Odds and ends: tiny series, init and demo targets, markup through the page builder.
+# --------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("n", [1, 2, 5])
+@pytest.mark.parametrize("method", ["stars", "pelt", "both"])
+def test_tiny_series_end_in_a_result_or_a_sentence(tmp_path: Path, n: int, method: str):
+    path = _series(tmp_path / "tiny.csv", n)
+    out = tmp_path / "out"
+    code, text = invoke(["shifts", path, "--value", "bottom_mean_c", "--out", out,
+                         "--method", method, "--boot", "9", "--cutoff", "2", "--min-size", "2"])
+    if code == 0:
+        assert {"shifts.csv", "regimes.csv", MANIFEST_NAME} <= {p.name for p in out.iterdir()}
+    else:
+        refused(code, text)
+        assert left_behind(out) == []
+
+
+def test_init_never_writes_through_a_link(tmp_path: Path):
+    folder = tmp_path / "cfg"
+    folder.mkdir()
+    victim = tmp_path / "victim.txt"
+    (folder / "coldindex.toml").symlink_to(victim)  # dangling: the victim does not exist yet
+    code, text = invoke(["init", folder])
+    refused(code, text, "symbolic link", exit_code=3)
+    assert not victim.exists()
+    (folder / "coldindex.toml").unlink()
+    (folder / "coldindex.toml").write_text("mine\n")
+    code, text = invoke(["init", folder])
+    refused(code, text, "already exists", exit_code=3)
+    assert (folder / "coldindex.toml").read_text() == "mine\n"
+
+
+def test_demo_into_a_file_is_refused(tmp_path: Path):
+    target = tmp_path / "taken"
+    target.write_text("x")
+    code, text = invoke(["demo", target, "--sims", "0", "--boot", "0"])
+    refused(code, text, "is a file", exit_code=3)
+    assert target.read_text() == "x"
+
+
+def test_frozen_choices_of_an_index_folder_damaged(good: Path, tmp_path: Path):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "frozen.json").write_text('["a", "list"]')
+    code, text = invoke(["index", good / "casts.csv", "--out", out, "--sims", "0",
+                         "--grid-km", "20", "--min-casts", "20"])
+    refused(code, text, "frozen.json is damaged", exit_code=2)
+    assert sorted(p.name for p in out.iterdir()) == ["frozen.json"]
+
+
+def test_a_model_with_no_value_is_refused():
+    from coldindex.errors import InputError
+    from coldindex.io.readers import check_trajectories
+
+    traj = pd.DataFrame({"model": ["A"] * 3 + ["B"] * 3, "scenario": "s1",
+                         "year": [2001, 2002, 2003] * 2,
+                         "value": [1.0, 1.1, 1.2, np.nan, np.nan, np.nan]})
+    with pytest.raises(InputError, match="model 'B' under scenario 's1' holds no finite value"):
+        check_trajectories(traj, "gridded models")
+    check_trajectories(traj[traj["model"] == "A"], "gridded models")  # a usable one passes
+
+
+def test_page_builder_escapes_every_field():
+    from coldindex.report.html import escape, render, table_html
+
+    payloads = (SCRIPT, BREAKOUT, MATHTEXT, "{{figure:x}}")
+    frame = pd.DataFrame({p: [p, 1.5] for p in payloads})
+    page = render(" ".join(payloads), list(payloads),
+                  [(p, f"<p>{escape(p)}</p>" + table_html(frame)) for p in payloads],
+                  {"x": b"\x89PNG\r\n\x1a\n"}, " ".join(payloads), f"<p>{escape(SCRIPT)}</p>")
+    tags: list[tuple[str, list]] = []
+    texts: list[str] = []
+
+    class Collect(HTMLParser):
+        def handle_starttag(self, tag, attrs):
+            tags.append((tag, attrs))
+
+        def handle_data(self, data):
+            texts.append(data)
+
+    Collect().feed(page)
+    assert {t for t, _ in tags} <= ALLOWED_TAGS
+    assert all({a for a, _ in attrs} <= {"lang", "charset", "class"} for t, attrs in tags)
+    assert not [t for t, _ in tags if t == "img"]  # "{{figure:x}}" from data stays text
+    joined = "".join(texts)
+    for p in payloads:
+        assert joined.count(p) >= 4
+
+
+def test_single_command_figures_draw_names_as_written(good: Path, tmp_path: Path):
+    traj = _traj(tmp_path / "traj.csv", models=(MATHTEXT, SCRIPT), scenario=MATHTEXT)
+    out = tmp_path / "out"
+    code, text = invoke(["project", traj, "--observed", good / "series.csv", "--value",
+                         "bottom_mean_c", "--out", out, "--adjust", "none"])
+    assert code == 0, text
+    assert (out / "projection.png").stat().st_size > 1000
