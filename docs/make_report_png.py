@@ -65,7 +65,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--sims", type=int, default=200, help="simulations a year for the demo")
     parser.add_argument("--release", type=Path, help="an existing release folder to show")
     parser.add_argument("--out", type=Path, default=DOCS / "report.png")
-    parser.add_argument("--window-size", default="1100,1300", help="browser window WIDTH,HEIGHT")
+    parser.add_argument("--window-size", default="1100,1340", help="browser window WIDTH,HEIGHT")
     parser.add_argument("--width", type=int, default=800, help="width of the written picture")
     args = parser.parse_args(argv)
     w, h = (int(v) for v in args.window_size.split(","))
