@@ -253,7 +253,7 @@ def skill_table(predictors: pd.DataFrame, target: pd.Series, lags: list[int],
     target
         Target values indexed by year.
     lags
-        Lags in years (0 = the summer after the winter).
+        Lags in years (0 = the first survey after the winter).
     confidence
         Confidence of the interval (default 0.9).
     reference
