@@ -357,7 +357,12 @@ def shifts(
     out: OutOpt,
     method: Annotated[str, typer.Option(help="stars, pelt or both.")] = "both",
     cutoff: Annotated[int, typer.Option(help="STARS cut-off length (years).")] = 10,
-    alpha: Annotated[float, typer.Option(help="STARS significance level.")] = 0.1,
+    alpha: Annotated[float, typer.Option(
+        help="Detection level of STARS itself (the t-test that sets its threshold); the "
+             "verdict is --p-max.")] = 0.1,
+    p_max: Annotated[float, typer.Option(
+        help="Largest family-wise p-value for a shift to survive the red-noise test (both "
+             "methods).")] = 0.05,
     huber: Annotated[float, typer.Option(help="STARS Huber weight parameter (SD units).")] = 1.0,
     prewhiten: Annotated[str, typer.Option(help="none, ip4 or mpk.")] = "none",
     subsample: Annotated[int | None, typer.Option(
@@ -382,7 +387,7 @@ def shifts(
         raise ColdindexError(f"--seed needs to be a whole number >= 0, got: {seed}.")
     opts = ShiftOptions(cutoff=cutoff, alpha=alpha, huber=huber, prewhiten=prewhiten,
                         subsample=subsample, min_size=min_size, boot=boot, seed=seed,
-                        null_window=null_window)
+                        null_window=null_window, p_max=p_max)
     outputs = plan_outputs(out, "shifts", ("shifts.csv", "regimes.csv"), (series,))
     df = read_series(series, value, parse_column_map(columns))
     with err_console.status("Running the red-noise bootstrap..."):
@@ -394,18 +399,25 @@ def shifts(
                       f"(median over {null_window}-year windows, bias-corrected), {boot} "
                       "replicates.")
     t = Table(title=escape(f"Regime shifts in {value}"), title_justify="left")
-    for col in ("method", "first year", "mean before", "mean after", "p (family-wise)",
-                "survives"):
+    for col in ("method", "first year", "mean before", "mean after", "t", "p", "survives",
+                "provisional"):
         t.add_column(col, justify="right")
-    for _, r in res.shifts.iterrows():
-        ok = bool(r["p_value"] < alpha) if r["p_value"] == r["p_value"] else False
+    survives = set(res.surviving().index)
+    for i, r in res.shifts.iterrows():
         t.add_row(r["method"], str(r["year"]), f"{r['mean_before']:.4g}",
-                  f"{r['mean_after']:.4g}",
+                  f"{r['mean_after']:.4g}", f"{r['t_stat']:.2f}",
                   "-" if r["p_value"] != r["p_value"] else f"{r['p_value']:.3f}",
-                  "[bold]yes[/]" if ok else "no")
+                  "[bold]yes[/]" if i in survives else "no",
+                  "yes" if r["provisional"] else "")
     out_console.print(t)
     if res.shifts.empty:
         out_console.print("No shift detected.")
+    else:
+        out_console.print(f"p: family-wise p-value of the red-noise bootstrap; a shift survives "
+                          f"when p < {p_max:g} (--p-max).")
+    if res.shifts["provisional"].any():
+        out_console.print(f"Provisional: fewer than {cutoff} years (--cutoff) of the new regime "
+                          "are in the record; the shift may move or vanish as years are added.")
     with outputs as o:
         write_csv(res.shifts, o.path("shifts.csv"))
         write_csv(res.regimes, o.path("regimes.csv"))

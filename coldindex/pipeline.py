@@ -575,6 +575,28 @@ def revisions_table(current: pd.DataFrame, previous: pd.DataFrame | None, cur_pr
     return pd.DataFrame(rows, columns=cols)
 
 
+WITHDRAWN_SHIFT = "provisional regime shift withdrawn"
+
+
+def withdrawn_shift_revisions(previous: pd.DataFrame, current: pd.DataFrame,
+                              column: str) -> pd.DataFrame:
+    """Rows of revisions.csv for the previous release's provisional shifts now gone.
+
+    ``previous`` holds the step (mean after minus mean before) as it was; ``current``
+    and ``change`` are blank (:func:`coldindex.regimes.withdrawn_provisional`).
+    """
+    from coldindex.regimes import withdrawn_provisional
+
+    gone = withdrawn_provisional(previous, current)
+    return pd.DataFrame({
+        "year": gone["year"].astype(int), "column": column,
+        "previous": (gone["mean_after"] - gone["mean_before"]).astype(float),
+        "current": np.nan, "change": np.nan,
+        "cause": [f"{WITHDRAWN_SHIFT}: {m.upper()} no longer detects a shift starting that "
+                  "year" for m in gone["method"]]},
+        columns=["year", "column", "previous", "current", "change", "cause"])
+
+
 def _versions() -> dict[str, str]:
     import importlib.metadata as md
 
@@ -658,7 +680,7 @@ def run_update(cfg: Config, out: Path, previous: Path | None = None,
         for stale in out.glob(".release-*.partial*"):  # left by a killed run
             if stale.is_dir() and not stale.is_symlink():
                 shutil.rmtree(stale, ignore_errors=True)
-        used = ["indices.csv", FROZEN_NAME, DOMAIN_NAME,
+        used = ["indices.csv", FROZEN_NAME, DOMAIN_NAME, "shifts.csv",
                 *(f"cuts/{c}.json" for c in cfg.classify.columns)]
         prev, notes = _previous_release(out, previous, used)
         n = _release_number(out)
@@ -783,7 +805,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     s = series[sc.column]
     shifts = detect_shifts(s.index, s.to_numpy(), methods, ShiftOptions(
         cutoff=sc.cutoff, alpha=sc.alpha, huber=sc.huber, prewhiten=sc.prewhiten,
-        min_size=sc.min_size, boot=sc.boot, seed=sc.seed))
+        min_size=sc.min_size, boot=sc.boot, seed=sc.seed, p_max=sc.p_max))
     written.append(writers.write_csv(shifts.shifts, rel / "shifts.csv"))
     written.append(writers.write_csv(shifts.regimes, rel / "regimes.csv"))
 
@@ -855,6 +877,12 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     prov = json.loads(json.dumps(prov))
     revisions = revisions_table(pd.read_csv(rel / "indices.csv"), prev_ind, prov, prev_prov,
                                 cfg.report.tolerance)
+    if prev is not None and (prev / "shifts.csv").is_file():
+        withdrawn = withdrawn_shift_revisions(pd.read_csv(prev / "shifts.csv"),
+                                              shifts.shifts, sc.column)
+        if len(withdrawn):
+            revisions = pd.concat([revisions.astype(withdrawn.dtypes.to_dict()), withdrawn],
+                                  ignore_index=True)
     written.append(writers.write_csv(revisions, rel / "revisions.csv"))
 
     _stage(progress, "figures")
@@ -920,22 +948,32 @@ def _headlines(indices: pd.DataFrame, classes: pd.DataFrame, cuts: dict, shifts:
             prev = valid.iloc[-2]
             text += (f", {last[main] - prev[main]:+.3g} {unit} from {int(prev['year'])}")
         out.append(text + ".")
-    sig = shifts[shifts["p_value"] < sc.alpha]
+    from coldindex.regimes import surviving
+
+    sig = surviving(shifts, sc.p_max)
     if len(sig):
         items = ", ".join(f"{r.method.upper()} {r.year} ({r.mean_before:.3g} -> "
-                          f"{r.mean_after:.3g}, p = {r.p_value:.3f})"
+                          f"{r.mean_after:.3g}, p = {r.p_value:.3f}"
+                          f"{', provisional' if r.provisional else ''})"
                           for r in sig.itertuples())
-        out.append(f"Regime shifts in {sc.column} that survive the red-noise test: {items}.")
+        out.append(f"Regime shifts in {sc.column} that survive the red-noise test "
+                   f"(p < {sc.p_max:g}): {items}.")
     else:
-        out.append(f"No regime shift in {sc.column} survives the red-noise test.")
+        out.append(f"No regime shift in {sc.column} survives the red-noise test "
+                   f"(p < {sc.p_max:g}).")
     if ol is not None:
         from coldindex.skill import outlook_sentence
 
         out.append("Outlook: " + outlook_sentence(ol, cfg.skill.column))
     if proj is not None:
         out += proj.summaries
-    out.append(f"{len(revisions)} past values changed since the previous release."
-               if len(revisions) else "No past value changed since the previous release.")
+    gone = revisions["cause"].astype(str).str.startswith(WITHDRAWN_SHIFT)
+    n_values = int((~gone).sum())
+    out.append(f"{n_values} past values changed since the previous release."
+               if n_values else "No past value changed since the previous release.")
+    if gone.any():
+        out.append(f"{int(gone.sum())} provisional regime shift(s) of the previous release "
+                   "withdrawn (revisions.csv).")
     return out
 
 

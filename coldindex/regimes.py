@@ -3,28 +3,40 @@
 Both detectors run on the series as given (``prewhiten='none'``, the default)
 or on a prewhitened copy. Significance comes from a parametric red-noise
 bootstrap of the *whole detection*: fit AR(1) to the series, simulate null
-series of the same length, run the same detector with the same settings on
-each, and record the largest standardized shift (|mean after - mean before| /
-the series' noise scale) found in it (0 when none). A detected shift's p-value
-is the share of null series whose largest standardized shift is at least as
-large as its own: a family-wise p-value over all shifts the detector might
-report.
+series of the same length, run the same detector with the same settings and
+the same optimiser on each, and record the largest shift statistic found in
+it (0 when none). A detected shift's p-value is the share of null series whose
+largest statistic is at least as large as its own: a family-wise p-value over
+all shifts the detector might report.
 
-Two estimates are chosen so that a real step does not hide itself:
+The shift statistic (:func:`shift_statistics`) is a two-sample t for the two
+regimes either side of the shift,
 
-* the AR(1) coefficient is the median of Marriott-Pope-Kendall corrected lag-1
-  estimates over all ``null_window``-long stretches (default 15 years); the
-  whole-series estimate grows with the step (0.67 instead of 0.5 for a 1.5-SD
-  step in 50 years) and makes the null so red that larger steps become *less*
-  significant (measured: power 4 % at 1.5 SD and 1 % at 3 SD, below the size);
-* the scale is the noise scale from first differences (:func:`robust_sd`),
-  the same on every series, where the plain SD would grow with the step.
+    t = |mean_after - mean_before| / (s sqrt(1/n_before' + 1/n_after')),
 
-Measured with these choices (benchmarks/README.md): size 7-8 % at p < 0.1 on
-AR(1) series (rho = 0.5, n = 50), power 17-19 % for a 1.5-SD step and 46-57 %
-for a 3-SD step. A real step still inflates the null somewhat; that, and the
-persistence of red noise itself, is the price of not trusting the detector's
-own segments.
+with s the pooled within-regime SD of the detector's whole segmentation and
+n' = n (1 - rho) / (1 + rho) the effective sizes of the two regimes under the
+series' lag-1 autocorrelation rho. Without persistence it is the two-sample t
+whose maximum over split points is the likelihood-ratio test of a shift in a
+normal mean (Worsley 1979). The segment lengths matter: the earlier statistic,
+|mean_after - mean_before| / noise SD, counted a 5-vs-5-year split like a
+28-vs-72-year one, so the null's maxima came from short segments and real
+shifts between long regimes lost their power (white noise, n = 50, 2-SD step:
+power 0.12 / 0.38 at p < 0.05). The effective sizes make the statistic's null
+distribution depend little on rho, so an error in the estimated rho moves the
+p-values little (benchmarks/README.md).
+
+rho, both in the statistic and for the null's AR(1), is the median of
+Marriott-Pope-Kendall corrected lag-1 estimates over all ``null_window``-long
+stretches (default 15 years): the whole-series estimate grows with a step
+(0.51 instead of 0 for a 2-SD step in 50 years of white noise) and would make
+the null so red that larger steps become less significant.
+
+Random streams are keyed by the detector's *name* (:func:`method_rng`), so a
+method's p-values do not depend on which other methods run. A shift whose first
+year lies within the last ``cutoff`` years of the record is marked
+``provisional``: fewer than a cut-off length of the new regime has been seen,
+and it may move or vanish as years are added.
 
 STARS choices, following Rodionov (2004):
 
@@ -39,10 +51,24 @@ STARS choices, following Rodionov (2004):
   grows as values are added; with Huber weighting (parameter H, in units of
   sigma_l) one reweighting step gives values farther than ``H sigma_l`` from the
   plain mean the weight ``H sigma_l / |x - mean|`` (Rodionov 2006).
+
+References
+----------
+Worsley, K. J. (1979). On the likelihood ratio test for a shift in location of
+normal populations. J. Am. Stat. Assoc. 74, 365-367.
+Bretherton, C. S., Widmann, M., Dymnikov, V. P., Wallace, J. M. & Bladé, I.
+(1999). The effective number of spatial degrees of freedom of a time-varying
+field. J. Climate 12, 1990-2009, eq. 30.
+Rodionov, S. N. (2004). A sequential algorithm for testing climate regime
+shifts. Geophys. Res. Lett. 31, L09204.
+Rodionov, S. N. (2006). Use of prewhitening in climate regime shift
+detection. Geophys. Res. Lett. 33, L12707.
 """
 
 from __future__ import annotations
 
+import functools
+import hashlib
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -52,20 +78,22 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import stats as sps
 
 from coldindex.errors import InputError
-from coldindex.stats import (
-    lag1_autocorrelation,
-    lag1_subsample_median,
-    robust_sd,
-    simulate_ar1,
-)
+from coldindex.schema import SHIFTS
+from coldindex.stats import lag1_autocorrelation, lag1_subsample_median, simulate_ar1
 
 FloatArray = NDArray[np.float64]
 METHODS = ("stars", "pelt")
+SHIFT_COLUMNS = list(SHIFTS.names)  # method, year, means, t_stat, p_value, rsi, provisional
 
 
 @dataclass(frozen=True)
 class ShiftOptions:
-    """Settings of both detectors and of the bootstrap."""
+    """Settings of both detectors, of the bootstrap and of the verdict.
+
+    ``alpha`` is STARS' own detection level (the t-test that sets its threshold);
+    ``p_max`` is the largest family-wise p-value for a shift to *survive* the
+    red-noise test, for either method.
+    """
 
     cutoff: int = 10
     alpha: float = 0.1
@@ -76,12 +104,15 @@ class ShiftOptions:
     boot: int = 999
     seed: int = 20261201
     null_window: int = 15
+    p_max: float = 0.05
 
     def __post_init__(self) -> None:
         if self.cutoff < 2:
             raise InputError(f"--cutoff needs to be >= 2, got: {self.cutoff}.")
         if not 0 < self.alpha < 1:
             raise InputError(f"--alpha needs to be in (0, 1), got: {self.alpha}.")
+        if not 0 < self.p_max < 1:
+            raise InputError(f"--p-max needs to be in (0, 1), got: {self.p_max}.")
         if self.huber <= 0:
             raise InputError(f"--huber needs to be > 0, got: {self.huber}.")
         if self.prewhiten not in ("none", "ip4", "mpk"):
@@ -96,13 +127,18 @@ class ShiftOptions:
 
 
 def _huber_mean(x: FloatArray, sigma: float, huber: float) -> float:
-    m = float(np.mean(x))
+    m = float(x.sum()) / len(x)
     dev = np.abs(x - m)
     lim = huber * sigma
-    if lim <= 0 or not np.any(dev > lim):
+    if lim <= 0 or not float(dev.max()) > lim:
         return m
     w = np.where(dev > lim, lim / np.maximum(dev, 1e-300), 1.0)
     return float(np.dot(w, x) / w.sum())
+
+
+@functools.lru_cache(maxsize=64)
+def _t_quantile(q: float, dof: int) -> float:
+    return float(sps.t.ppf(q, dof))
 
 
 def stars(x: ArrayLike, cutoff: int = 10, alpha: float = 0.1, huber: float = 1.0
@@ -141,7 +177,7 @@ def stars(x: ArrayLike, cutoff: int = 10, alpha: float = 0.1, huber: float = 1.0
     sigma = np.sqrt(sigma2)
     if sigma == 0:
         return [], []
-    diff = float(sps.t.ppf(1 - alpha / 2, 2 * ell - 2)) * np.sqrt(2 * sigma2 / ell)
+    diff = _t_quantile(1 - alpha / 2, 2 * ell - 2) * np.sqrt(2 * sigma2 / ell)
     scale = ell * sigma
     vals = v.tolist()
     start = 0
@@ -185,7 +221,15 @@ def pelt_penalty(x: ArrayLike) -> float:
 
 
 def pelt(x: ArrayLike, min_size: int = 5, penalty: float | None = None) -> list[int]:
-    """Penalised least-squares change points with ruptures' PELT (``jump=1``).
+    """Penalised least-squares change points: the PELT objective, solved exactly.
+
+    Minimises the sum over segments of the squared deviations from the segment
+    mean plus ``penalty`` per change point, every break position allowed (no
+    ``jump`` restriction). The optimum is found by the optimal-partitioning
+    dynamic programme (:func:`optimal_partition_batch`), the same code that
+    segments the bootstrap's null series, so data and null share one optimiser.
+    (ruptures' ``Pelt(jump=1)`` solves the same problem, but returned a
+    non-optimal segmentation for 0.5-1 % of short series: tests/test_regimes.py.)
 
     Parameters
     ----------
@@ -205,13 +249,21 @@ def pelt(x: ArrayLike, min_size: int = 5, penalty: float | None = None) -> list[
     ----------
     Killick, R., Fearnhead, P. & Eckley, I. A. (2012). Optimal detection of
     changepoints with a linear computational cost. JASA 107, 1590-1598.
+    Jackson, B. et al. (2005). An algorithm for optimal partitioning of data on
+    an interval. IEEE Signal Process. Lett. 12, 105-108.
     """
-    import ruptures as rpt
-
     v = np.asarray(x, float)
     pen = pelt_penalty(v) if penalty is None else penalty
-    ends = rpt.Pelt(model="l2", min_size=min_size, jump=1).fit(v).predict(pen=pen)
-    return [int(e) for e in ends[:-1]]
+    return optimal_partition_batch(v[None, :], [pen], min_size)[0]
+
+
+def segmentation_cost(x: ArrayLike, starts: list[int], penalty: float) -> float:
+    """Penalised least-squares cost of a segmentation (the objective of :func:`pelt`)."""
+    v = np.asarray(x, float)
+    edges = [0, *starts, len(v)]
+    rss = sum(float(np.sum((v[a:b] - v[a:b].mean()) ** 2))
+              for a, b in zip(edges[:-1], edges[1:], strict=True))
+    return rss + penalty * len(starts)
 
 
 def optimal_partition_batch(X: ArrayLike, penalties: ArrayLike, min_size: int
@@ -268,13 +320,81 @@ def _segment_means(v: FloatArray, starts: list[int]) -> list[float]:
     return [float(np.mean(v[a:b])) for a, b in zip(edges[:-1], edges[1:], strict=True)]
 
 
-def largest_standardized_shift(v: FloatArray, starts: list[int]) -> float:
-    """Largest |mean after - mean before| over the shifts, divided by :func:`robust_sd`."""
+def lag1_rows(X: ArrayLike, window: int = 15) -> FloatArray:
+    """:func:`coldindex.stats.lag1_subsample_median` of every row of X, vectorised.
+
+    Parameters
+    ----------
+    X
+        Series, (B, n).
+    window
+        Length of the stretches.
+
+    Returns
+    -------
+    numpy.ndarray
+        One shift-robust lag-1 estimate per row, (B,).
+    """
+    X = np.atleast_2d(np.asarray(X, float))
+    m = min(int(window), X.shape[1])
+    if m < 5:
+        return np.array([lag1_subsample_median(x, window) for x in X])
+    W = sliding_window_view(X, m, axis=1)
+    d = W - W.mean(axis=2, keepdims=True)
+    den = np.sum(d * d, axis=2)
+    num = np.sum(d[..., :-1] * d[..., 1:], axis=2)
+    r = np.divide(num, den, out=np.zeros_like(num), where=den != 0)
+    return np.median(np.clip((m * r + 1.0) / (m - 3.0), -0.99, 0.99), axis=1)
+
+
+def shift_statistics(v: ArrayLike, starts: list[int], rho: float) -> FloatArray:
+    """Two-sample t of each shift, with the regimes' effective sizes. [1]
+
+    For the shift between regimes a (before) and b (after),
+    ``|mean_b - mean_a| / (s sqrt(1/n_a' + 1/n_b'))``, where s is the pooled
+    within-regime standard deviation of the whole segmentation (ddof = number
+    of regimes) and ``n' = n (1 - rho) / (1 + rho)`` the effective size of a
+    regime (Bretherton et al. 1999, eq. 30, with rho clipped to [-0.9, 0.9] and
+    no other bound). With rho = 0 this is the two-sample t whose maximum over
+    the split points is the likelihood-ratio statistic for one shift in a
+    normal mean (Worsley 1979).
+
+    Parameters
+    ----------
+    v
+        The series the detector saw.
+    starts
+        Indices where new regimes start.
+    rho
+        Lag-1 autocorrelation of the series (:func:`lag1_rows`).
+
+    Returns
+    -------
+    numpy.ndarray
+        One statistic per shift (infinite for a step between constant regimes).
+
+    References
+    ----------
+    Worsley, K. J. (1979). On the likelihood ratio test for a shift in location
+    of normal populations. J. Am. Stat. Assoc. 74, 365-367.
+    Bretherton, C. S., Widmann, M., Dymnikov, V. P., Wallace, J. M. & Bladé, I.
+    (1999). J. Climate 12, 1990-2009, eq. 30.
+    """
+    x = np.asarray(v, float)
     if not starts:
-        return 0.0
-    means = _segment_means(v, starts)
-    sd = robust_sd(v)
-    return float(np.max(np.abs(np.diff(means)))) / sd if sd > 0 else 0.0
+        return np.zeros(0)
+    edges = np.array([0, *starts, len(x)])
+    sizes = np.diff(edges)
+    means = np.add.reduceat(x, edges[:-1]) / sizes
+    resid = x - np.repeat(means, sizes)
+    dof = len(x) - len(sizes)
+    s = float(np.sqrt(resid @ resid / dof)) if dof > 0 else 0.0
+    r = float(np.clip(rho, -0.9, 0.9))
+    inflation = (1.0 + r) / (1.0 - r)  # n / n'
+    step = np.abs(np.diff(means))
+    se = s * np.sqrt(inflation * (1.0 / sizes[:-1] + 1.0 / sizes[1:]))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(step > 0, step / se, 0.0)
 
 
 def prewhiten(x: ArrayLike, method: str, subsample: int) -> tuple[FloatArray, float]:
@@ -305,24 +425,80 @@ def prewhiten(x: ArrayLike, method: str, subsample: int) -> tuple[FloatArray, fl
 
 
 def _detect(v: FloatArray, method: str, opts: ShiftOptions) -> tuple[list[int], list[float]]:
+    """One series through a detector: starts of new regimes and (STARS) their RSIs."""
     if method == "stars":
         return stars(v, opts.cutoff, opts.alpha, opts.huber)
     return pelt(v, opts.min_size), []
 
 
-def _null_stats(method: str, n: int, phi: float, opts: ShiftOptions,
-                rng: np.random.Generator) -> FloatArray:
-    null = simulate_ar1(phi, n, opts.boot, rng)
+def detect_rows(X: ArrayLike, method: str, opts: ShiftOptions) -> list[list[int]]:
+    """Run one detector on every row of X (data and null alike).
+
+    PELT rows are segmented together by :func:`optimal_partition_batch`, which
+    gives the same breaks as :func:`pelt` row by row (one optimiser for data and
+    null); STARS rows one by one.
+    """
+    X = np.atleast_2d(np.asarray(X, float))
+    if method == "pelt":
+        return optimal_partition_batch(X, [pelt_penalty(x) for x in X], opts.min_size)
+    return [_detect(x, method, opts)[0] for x in X]
+
+
+def max_shift_statistics(X: ArrayLike, method: str, opts: ShiftOptions) -> FloatArray:
+    """Largest :func:`shift_statistics` of each row after detection (0 without a shift).
+
+    This is the bootstrap's statistic: applied to null series it gives the null
+    distribution; applied to data it gives the largest statistic of the series.
+    Each row's rho is its own :func:`lag1_rows` estimate.
+    """
+    X = np.atleast_2d(np.asarray(X, float))
+    rhos = lag1_rows(X, opts.null_window)
+    starts = detect_rows(X, method, opts)
+    return np.array([shift_statistics(x, st, r).max(initial=0.0)
+                     for x, st, r in zip(X, starts, rhos, strict=True)])
+
+
+def null_series(n: int, phi: float, opts: ShiftOptions, rng: np.random.Generator,
+                size: int) -> FloatArray:
+    """AR(1) null series as the detector would see them (prewhitened when asked).
+
+    Returns
+    -------
+    numpy.ndarray
+        (size, n), or (size, n - 1) after prewhitening.
+    """
+    null = simulate_ar1(phi, n, size, rng)
     if opts.prewhiten != "none":
         sub = opts.subsample or max(5, (opts.cutoff + 1) // 3)
         null = np.array([prewhiten(s, opts.prewhiten, sub)[0] for s in null])
-    if method == "pelt":
-        pens = [pelt_penalty(s) for s in null]
-        starts = optimal_partition_batch(null, pens, opts.min_size)
-        return np.array([largest_standardized_shift(s, st) for s, st in zip(null, starts,
-                                                                             strict=True)])
-    return np.array([largest_standardized_shift(s, stars(s, opts.cutoff, opts.alpha,
-                                                         opts.huber)[0]) for s in null])
+    return null
+
+
+def method_rng(seed: int, method: str) -> np.random.Generator:
+    """Random stream of one detector's bootstrap, keyed by the detector's name.
+
+    ``SeedSequence([seed, key])`` with key the first 8 bytes of the SHA-256 of
+    the name: the stream does not depend on the position of the method in the
+    list, nor on which other methods run.
+    """
+    key = int.from_bytes(hashlib.sha256(method.encode("utf-8")).digest()[:8], "big")
+    return np.random.default_rng(np.random.SeedSequence([int(seed), key]))
+
+
+def p_values(stats: ArrayLike, null: ArrayLike) -> FloatArray:
+    """Bootstrap p-values ``(1 + #{null >= t}) / (B + 1)`` of each statistic t.
+
+    The observed statistic counts as one of the B + 1 draws, so no p-value is 0.
+
+    References
+    ----------
+    Davison, A. C. & Hinkley, D. V. (1997). Bootstrap Methods and their
+    Application. Cambridge University Press, ch. 4.
+    """
+    t = np.asarray(stats, float)
+    z = np.sort(np.asarray(null, float))
+    above = len(z) - np.searchsorted(z, t * (1 - 1e-12), side="left")
+    return np.asarray((1.0 + above) / (len(z) + 1.0), dtype=np.float64)
 
 
 @dataclass
@@ -332,12 +508,16 @@ class ShiftResult:
     Attributes
     ----------
     shifts
-        One row a shift: ``method``, ``year`` (first year of the new regime),
-        ``mean_before``, ``mean_after``, ``p_value``, ``rsi`` (STARS only).
+        One row a shift (columns :data:`SHIFT_COLUMNS`): ``method``, ``year``
+        (first year of the new regime), ``mean_before``, ``mean_after``,
+        ``t_stat`` (:func:`shift_statistics`), ``p_value`` (family-wise),
+        ``rsi`` (STARS only), ``provisional``.
     regimes
         One row a regime: ``method``, ``start``, ``end``, ``mean``, ``n``.
     phi
-        Lag-1 autocorrelation of the bootstrap null (:func:`lag1_subsample_median`).
+        Lag-1 autocorrelation of the bootstrap null (:func:`lag1_rows`).
+    p_max
+        Largest p-value for a shift to survive (:meth:`surviving`).
     prewhiten_rho
         Red-noise coefficient removed by prewhitening (None without).
     skipped_years
@@ -347,8 +527,18 @@ class ShiftResult:
     shifts: pd.DataFrame
     regimes: pd.DataFrame
     phi: float
+    p_max: float = 0.05
     prewhiten_rho: float | None = None
     skipped_years: list[int] = field(default_factory=list)
+
+    def surviving(self) -> pd.DataFrame:
+        """The shifts whose family-wise p-value is below ``p_max`` (the verdict)."""
+        return surviving(self.shifts, self.p_max)
+
+
+def surviving(shifts: pd.DataFrame, p_max: float) -> pd.DataFrame:
+    """Rows of a shifts table whose p-value is below ``p_max`` (a blank p never survives)."""
+    return shifts[shifts["p_value"].fillna(1.0) < p_max]
 
 
 def detect_shifts(years: ArrayLike, values: ArrayLike, methods: tuple[str, ...] = METHODS,
@@ -363,7 +553,7 @@ def detect_shifts(years: ArrayLike, values: ArrayLike, methods: tuple[str, ...] 
     methods
         ``stars`` and/or ``pelt``.
     opts
-        Detector and bootstrap settings.
+        Detector, bootstrap and verdict settings.
 
     Returns
     -------
@@ -387,7 +577,7 @@ def detect_shifts(years: ArrayLike, values: ArrayLike, methods: tuple[str, ...] 
     y, v = y[ok], v[ok]
     if np.std(v) == 0:
         raise InputError("The series is constant; there is no shift to detect.")
-    phi = lag1_subsample_median(v, opts.null_window)
+    phi = float(lag1_rows(v, opts.null_window)[0])
     rho = None
     work = v
     work_years = y
@@ -395,33 +585,63 @@ def detect_shifts(years: ArrayLike, values: ArrayLike, methods: tuple[str, ...] 
         sub = opts.subsample or max(5, (opts.cutoff + 1) // 3)
         work, rho = prewhiten(v, opts.prewhiten, sub)
         work_years = y[1:]
+    work_rho = float(lag1_rows(work, opts.null_window)[0])
     shift_rows, regime_rows = [], []
-    for k, method in enumerate(methods):
+    for method in methods:
         if method not in METHODS:
             raise InputError(f"--method needs to be stars, pelt or both, got: {method!r}.")
         starts, rsis = _detect(work, method, opts)
-        # Report means and sizes on the original series, at the detected years.
+        # The statistic on the series the detector saw; means on the original series.
+        tstat = shift_statistics(work, starts, work_rho)
         starts_v = [int(np.searchsorted(y, work_years[s])) for s in starts]
         means = _segment_means(v, starts_v)
-        pvals = [float("nan")] * len(starts_v)
+        pvals = np.full(len(starts_v), np.nan)
         if starts_v and opts.boot > 0:
-            rng = np.random.default_rng(np.random.SeedSequence([opts.seed, k]))
-            null = _null_stats(method, len(work), phi, opts, rng)
-            seg = _segment_means(work, starts)  # sizes on the series the detector saw
-            scale = robust_sd(work)
-            for j in range(len(starts_v)):
-                size = abs(seg[j + 1] - seg[j]) / scale if scale > 0 else 0.0
-                pvals[j] = (1 + int(np.sum(null >= size - 1e-12))) / (opts.boot + 1)
+            null = null_series(len(v), phi, opts, method_rng(opts.seed, method), opts.boot)
+            pvals = p_values(tstat, max_shift_statistics(null, method, opts))
         for j, s in enumerate(starts_v):
             shift_rows.append({"method": method, "year": int(y[s]), "mean_before": means[j],
-                               "mean_after": means[j + 1], "p_value": pvals[j],
-                               "rsi": rsis[j] if rsis else float("nan")})
+                               "mean_after": means[j + 1], "t_stat": float(tstat[j]),
+                               "p_value": float(pvals[j]),
+                               "rsi": rsis[j] if rsis else float("nan"),
+                               "provisional": bool(y[s] > last - opts.cutoff)})
         edges = [0, *starts_v, len(v)]
         for a, b, mu in zip(edges[:-1], edges[1:], means, strict=True):
             regime_rows.append({"method": method, "start": int(y[a]), "end": int(y[b - 1]),
                                 "mean": mu, "n": b - a})
-    shifts = pd.DataFrame(shift_rows, columns=["method", "year", "mean_before", "mean_after",
-                                               "p_value", "rsi"])
+    shifts = pd.DataFrame(shift_rows, columns=SHIFT_COLUMNS).astype({"provisional": bool})
     regimes = pd.DataFrame(regime_rows, columns=["method", "start", "end", "mean", "n"])
-    return ShiftResult(shifts=shifts, regimes=regimes, phi=phi, prewhiten_rho=rho,
-                       skipped_years=skipped)
+    return ShiftResult(shifts=shifts, regimes=regimes, phi=phi, p_max=opts.p_max,
+                       prewhiten_rho=rho, skipped_years=skipped)
+
+
+def withdrawn_provisional(previous: pd.DataFrame, current: pd.DataFrame) -> pd.DataFrame:
+    """Provisional shifts of an earlier run that the current run no longer reports.
+
+    A shift counts as still there when the current run reports the same method
+    and first year (provisional or not); a shift that moved by a year is
+    withdrawn at its old year.
+
+    Parameters
+    ----------
+    previous, current
+        ``shifts.csv`` tables of the earlier and the current run. An earlier
+        table without a ``provisional`` column (written before the flag
+        existed) gives no rows.
+
+    Returns
+    -------
+    pandas.DataFrame
+        The withdrawn rows of ``previous``: ``method``, ``year``,
+        ``mean_before``, ``mean_after``.
+    """
+    cols = ["method", "year", "mean_before", "mean_after"]
+    if "provisional" not in previous.columns or previous.empty:
+        return pd.DataFrame(columns=cols)
+    flag = previous["provisional"].astype(str).str.lower().isin(("true", "1", "1.0"))
+    prov = previous[flag]
+    now = {(str(m), int(y)) for m, y in zip(current["method"], current["year"], strict=True)}
+    gone = [(str(m), int(y)) not in now for m, y in zip(prov["method"], prov["year"],
+                                                       strict=True)]
+    out = prov[gone][cols].sort_values(["year", "method"], kind="stable")
+    return out.reset_index(drop=True).astype({"year": int})

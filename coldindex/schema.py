@@ -308,9 +308,19 @@ SHIFTS = Table(
         Column("year", "-", "First year of the new regime.", "int"),
         Column("mean_before", "as input", "Mean of the regime before the shift.", "float"),
         Column("mean_after", "as input", "Mean of the regime after the shift.", "float"),
-        Column("p_value", "1", "Family-wise p-value from the red-noise bootstrap of the whole "
-               "detection (blank with `--boot 0`).", "float"),
+        Column("t_stat", "1", "Shift statistic: two-sample t of the regimes either side, "
+               "abs(mean_after - mean_before) / (s sqrt(1/n_before' + 1/n_after')), with s the "
+               "pooled within-regime SD and n' = n (1 - rho) / (1 + rho) the regimes' effective "
+               "sizes under the series' lag-1 autocorrelation rho.", "float"),
+        Column("p_value", "1", "Family-wise p-value: share of red-noise null series (same "
+               "detector, settings and optimiser) whose largest `t_stat` is at least this "
+               "one's (blank with `--boot 0`). A shift survives when it is below `--p-max` "
+               "(`shifts.p_max`).", "float"),
         Column("rsi", "1", "STARS regime shift index (blank for PELT).", "float"),
+        Column("provisional", "-", "True when the first year lies within the last cut-off "
+               "length (`--cutoff` years) of the record: the new regime is too short to judge "
+               "and the shift may move or vanish as years are added (a withdrawn provisional "
+               "shift is listed in the next release's `revisions.csv`).", "bool"),
     ),
 )
 
@@ -480,16 +490,20 @@ COVARIATES = Table(
 REVISIONS = Table(
     "revisions.csv",
     "Output of `coldindex update`: every past value of indices.csv that changed beyond the "
-    "tolerance since the previous release.",
+    "tolerance since the previous release, and every provisional regime shift of the previous "
+    "release's shifts.csv that is no longer detected.",
     (
-        Column("year", "-", "Year of the value.", "int"),
-        Column("column", "-", "Column of indices.csv.", "str"),
-        Column("previous", "as column", "Value in the previous release.", "float"),
-        Column("current", "as column", "Value now.", "float"),
+        Column("year", "-", "Year of the value (of a withdrawn shift: its first year).", "int"),
+        Column("column", "-", "Column of indices.csv (of a withdrawn shift: the column tested "
+               "for shifts).", "str"),
+        Column("previous", "as column", "Value in the previous release (of a withdrawn shift: "
+               "its step, mean after minus mean before).", "float"),
+        Column("current", "as column", "Value now (blank for a withdrawn shift).", "float"),
         Column("change", "as column", "Current minus previous.", "float"),
         Column("cause", "-", "Likely cause read from the two provenance files: that year's "
                "casts changed, parameters changed, tool version changed, domain geometry or "
-               "variogram family changed.", "str"),
+               "variogram family changed; or `provisional regime shift withdrawn` and the "
+               "method.", "str"),
     ),
 )
 

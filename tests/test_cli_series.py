@@ -84,9 +84,14 @@ def test_shifts_end_to_end(tmp_path: Path):
     assert code == 0, text
     assert "1986" in text  # the gap is reported
     sh = pd.read_csv(out / "shifts.csv")
-    assert list(sh.columns) == ["method", "year", "mean_before", "mean_after", "p_value", "rsi"]
+    assert list(sh.columns) == ["method", "year", "mean_before", "mean_after", "t_stat",
+                                "p_value", "rsi", "provisional"]
     assert set(sh["method"]) == {"stars", "pelt"}
     assert (sh.groupby("method")["year"].apply(lambda s: 2001 in set(s))).all()
+    # The 2-SD step in 40 years survives at the default --p-max 0.05; none is provisional.
+    assert (sh.loc[sh["year"] == 2001, "p_value"] < 0.05).all()
+    assert not sh["provisional"].any()
+    assert "survives when p < 0.05 (--p-max)" in " ".join(text.split())
     reg = pd.read_csv(out / "regimes.csv")
     for _, g in reg.groupby("method"):
         assert g["n"].sum() == 39
@@ -153,3 +158,20 @@ def test_skill_outlook_picks_its_lag_or_falls_back_to_climatology(tmp_path: Path
     assert "the outlook is climatological" in flat and "persistence" in flat
     code, text = run(*args, "--out", tmp_path / "c", "--outlook-lag", "4")
     assert code == 2 and "is not among the lags" in " ".join(text.split())
+
+
+def test_shifts_p_max_and_provisional_in_the_terminal(tmp_path: Path):
+    rng = np.random.default_rng(4)
+    v = rng.normal(0, 0.3, 40)
+    v[34:] += 2.5  # a step six years before the end: provisional with --cutoff 10
+    p = tmp_path / "late.csv"
+    pd.DataFrame({"year": np.arange(1981, 2021), "x_c": v.round(3)}).to_csv(p, index=False)
+    code, text = run("shifts", p, "--value", "x_c", "--out", tmp_path / "o", "--method",
+                     "pelt", "--boot", "99", "--p-max", "0.2")
+    assert code == 0, text
+    sh = pd.read_csv(tmp_path / "o" / "shifts.csv")
+    assert sh["year"].tolist() == [2015] and sh["provisional"].tolist() == [True]
+    assert "survives when p < 0.2 (--p-max)" in " ".join(text.split())
+    assert "Provisional:" in text
+    code, text = run("shifts", p, "--value", "x_c", "--out", tmp_path / "o2", "--p-max", "1")
+    assert code == 2 and "--p-max needs to be in (0, 1)" in text

@@ -238,3 +238,33 @@ def test_incompatible_previous_release_is_refused(tmp_path: Path):
     assert not any((tmp_path / "out").glob("release-*"))
     with pytest.raises(Exception, match="not a coldindex release"):
         run_update(load_config(cfg_path), tmp_path / "out", previous=tmp_path)
+
+
+def test_withdrawn_provisional_shift_is_listed_in_revisions(first_release, tmp_path: Path):
+    # A previous release that reported a provisional STARS shift (within the last cut-off
+    # length, 4 years) which the same inputs no longer show: written into a copy of the
+    # first release, its checksum recorded as a release would.
+    _, cfg_path, run = first_release
+    prev = tmp_path / "previous"
+    shutil.copytree(run.release, prev)
+    sh = pd.read_csv(prev / "shifts.csv")
+    year = next(y for y in (2011, 2010, 2012) if not ((sh["method"] == "stars")
+                                                       & (sh["year"] == y)).any())
+    row = {"method": "stars", "year": year, "mean_before": 1.0, "mean_after": 1.4,
+           "t_stat": 2.0, "p_value": 0.3, "rsi": 0.1, "provisional": True}
+    pd.concat([sh, pd.DataFrame([row])], ignore_index=True).to_csv(prev / "shifts.csv",
+                                                                   index=False)
+    prov = json.loads((prev / "provenance.json").read_text())
+    prov["outputs_sha256"]["shifts.csv"] = sha256_file(prev / "shifts.csv")
+    (prev / "provenance.json").write_text(json.dumps(prov))
+    new = run_update(load_config(cfg_path), tmp_path / "out", previous=prev)
+    rev = pd.read_csv(new.release / "revisions.csv")
+    gone = rev[rev["cause"].str.startswith("provisional regime shift withdrawn")]
+    assert gone["year"].tolist() == [year] and "STARS" in gone["cause"].iloc[0]
+    assert gone["column"].tolist() == ["bottom_mean_c"]
+    assert gone["previous"].iloc[0] == pytest.approx(0.4)
+    assert gone["current"].isna().all()
+    assert len(rev) == len(gone)  # same inputs: no value changed
+    assert "No past value changed since the previous release." in new.headlines
+    assert any("provisional regime shift(s) of the previous release withdrawn" in h
+               for h in new.headlines)
