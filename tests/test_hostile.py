@@ -1078,3 +1078,42 @@ def test_single_command_figures_draw_names_as_written(good: Path, tmp_path: Path
                          "bottom_mean_c", "--out", out, "--adjust", "none"])
     assert code == 0, text
     assert (out / "projection.png").stat().st_size > 1000
+
+
+SINGLE_KILLER = """
+import os, signal, sys
+from pathlib import Path
+from coldindex.cli import main
+
+out = Path(sys.argv[2])
+real = os.replace
+def replace(src, dst, *a, **k):
+    real(src, dst, *a, **k)
+    if Path(dst).parent == out and Path(dst).name == "classes.csv":
+        os.kill(os.getpid(), signal.SIGKILL)  # one output replaced, the other not yet
+os.replace = replace
+sys.argv = ["coldindex", "classify", sys.argv[1], "--value", "bottom_mean_c", "--out",
+            str(out), "--cut-values", sys.argv[3]]
+main()
+"""
+
+
+def test_a_killed_single_command_leaves_a_detectably_incomplete_set(good: Path, tmp_path: Path):
+    out = tmp_path / "out"
+    code, text = invoke(["classify", good / "series.csv", "--value", "bottom_mean_c", "--out",
+                         out, "--cut-values", "0.5,1.5"])
+    assert code == 0 and (out / MANIFEST_NAME).is_file(), text
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    proc = subprocess.run([sys.executable, "-c", SINGLE_KILLER, str(good / "series.csv"),
+                           str(out), "0.9,1.1"], capture_output=True, text=True, env=env,
+                          timeout=300)
+    assert proc.returncode == -signal.SIGKILL, proc.stderr[-2000:]
+    assert not (out / MANIFEST_NAME).exists()  # the mixed set reads as incomplete
+    code, text = invoke(["classify", good / "series.csv", "--value", "bottom_mean_c", "--out",
+                         out, "--cut-values", "0.9,1.1"])
+    assert code == 0, text
+    manifest = json.loads((out / MANIFEST_NAME).read_text())
+    assert {n: sha256_file(out / n) for n in manifest["outputs_sha256"]} == \
+        manifest["outputs_sha256"]
+    assert json.loads((out / "cuts.json").read_text())["low"] == 0.9
+    assert not [p for p in out.iterdir() if p.name.startswith(".")]  # no staging left

@@ -216,7 +216,9 @@ class OutputSet:
     On a clean exit, once every named output is present, the old manifest is
     removed, every staged file replaces its target, and a new manifest
     (:data:`MANIFEST_NAME`, with each file's SHA-256) is written last. On any failure
-    the staging folder is removed and the targets stay as they were.
+    the staging folder is removed and the targets stay as they were. A staging folder
+    left by a killed run (its lock no longer held) is removed by the next set opened
+    in the same folder.
 
     Parameters
     ----------
@@ -234,6 +236,7 @@ class OutputSet:
         self.names = list(names)
         self.written: list[Path] = []
         self._dir: Path | None = None
+        self._alive: Any = None
 
     @property
     def targets(self) -> list[Path]:
@@ -247,8 +250,13 @@ class OutputSet:
         return self._dir
 
     def __enter__(self) -> OutputSet:
+        from filelock import FileLock
+
         prepare_out_dir(self.out)
-        self._dir = _private_dir(self.out, ".coldindex-staging-")
+        self._dir = _private_dir(self.out, STAGING_PREFIX)
+        self._alive = FileLock(str(self._dir / ALIVE_NAME), timeout=0)
+        self._alive.acquire()  # held while the set is open; the OS frees it if we die
+        _remove_dead_staging(self.out, self._dir)
         return self
 
     def path(self, name: str) -> Path:
@@ -261,6 +269,8 @@ class OutputSet:
             if exc_type is None:
                 self._commit(self.dir)
         finally:
+            if self._alive is not None:
+                self._alive.release()
             shutil.rmtree(self.dir, ignore_errors=True)
 
     def _commit(self, staging: Path) -> None:
@@ -287,6 +297,35 @@ class OutputSet:
         write_json({"tool": "coldindex", "version": __version__, "command": self.command,
                     "outputs_sha256": hashes}, manifest)
         self.written = [self.out / n for n in self.names]
+
+
+STAGING_PREFIX = ".coldindex-staging-"
+ALIVE_NAME = ".alive"
+
+
+def _remove_dead_staging(out: Path, mine: Path) -> None:
+    """Remove staging folders of killed runs: their lock is free (a live run holds it)."""
+    import time
+
+    from filelock import FileLock, Timeout
+
+    for d in out.glob(STAGING_PREFIX + "*"):
+        if d == mine or d.is_symlink() or not d.is_dir():
+            continue
+        alive = d / ALIVE_NAME
+        try:
+            if not alive.is_file():  # just created by another run, or not ours: leave young
+                if time.time() - d.stat().st_mtime > 3600:
+                    shutil.rmtree(d, ignore_errors=True)
+                continue
+            probe = FileLock(str(alive), timeout=0)
+            probe.acquire()
+        except Timeout:
+            continue  # a live run is staging there
+        except OSError:
+            continue
+        probe.release()
+        shutil.rmtree(d, ignore_errors=True)
 
 
 def output_targets(out: Path, names: Sequence[str]) -> list[Path]:
