@@ -9,7 +9,7 @@ from typer.testing import CliRunner
 
 from coldindex.cli import app
 from coldindex.config import load_config
-from coldindex.errors import ConfigError
+from coldindex.errors import ConfigError, OutputError, StageError
 from coldindex.io.writers import sha256_file
 from coldindex.pipeline import covariates_table, run_update
 from coldindex.schema import CLASSES, EMERGENCE, SHIFTS, SKILL, indices_table
@@ -165,7 +165,7 @@ def test_failure_leaves_no_release_and_previous_intact(first_release, monkeypatc
         raise RuntimeError("injected failure in the report stage")
 
     monkeypatch.setattr("coldindex.pipeline._report_page", boom)
-    with pytest.raises(RuntimeError, match="injected"):
+    with pytest.raises(StageError, match="The report stage of the update failed .*injected"):
         run_update(load_config(cfg_path), out)
     assert sorted(p.name for p in out.iterdir()) == before
     assert (out / "latest").read_text().strip() == "release-1"
@@ -201,9 +201,12 @@ def test_config_errors(tmp_path: Path):
     cfg_path.write_text(CONFIG.replace('"ice.csv"', '"nope.csv"'))
     with pytest.raises(ConfigError, match="inputs.ice names .*nope.csv"):
         run_update(load_config(cfg_path), tmp_path / "out")
-    cfg_path.write_text(CONFIG)
-    with pytest.raises(ConfigError, match="lies inside the folder"):
-        run_update(load_config(cfg_path), tmp_path / "inputs" / "releases")
+    cfg_path.write_text(CONFIG.replace('"ice.csv"', '"latest"'))
+    (tmp_path / "inputs" / "latest").write_text("release-1\n")
+    with pytest.raises(OutputError, match="would overwrite the input"):
+        run_update(load_config(cfg_path), tmp_path / "inputs")  # inputs may sit in --out
+    assert sorted(p.name for p in (tmp_path / "inputs").iterdir()) == [
+        "casts.csv", "coldindex.toml", "domain.geojson", "ice.csv", "latest", "traj.csv"]
 
 
 def test_covariates_lags_align_by_year():
