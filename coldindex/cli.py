@@ -209,11 +209,21 @@ def index(
     seed: Annotated[int, typer.Option(help="Base random seed.")] = IndexOptions.seed,
     min_casts: Annotated[int, typer.Option(help="Fewest casts for a year's indices.")] = 30,
     min_coverage: Annotated[float, typer.Option(
-        help="Lowest share of the domain within 1.5 station spacings of a cast.")] = 0.75,
+        help="Lowest share of the domain within 1.5 reference station spacings of a cast "
+             "(the reference spacing is frozen with the domain).")] = 0.75,
     method: Annotated[str, typer.Option(help="kriging or idw.")] = "kriging",
     variogram: Annotated[str, typer.Option(
-        help="exponential, spherical, matern, gaussian, or auto (chosen by pooled "
-             "cross-validation, then frozen).")] = "auto",
+        help="exponential, spherical, matern, gaussian, or auto (chosen by the pooled "
+             "likelihood of the yearly fits, or pooled cross-validation with --fit wls; then "
+             "frozen).")] = "auto",
+    fit: Annotated[str, typer.Option(
+        help="Variogram fit: reml (restricted maximum likelihood, default), ml, or wls "
+             "(least squares on the binned variogram, bins weighted by pair counts).")
+    ] = IndexOptions.fit,
+    param_draws: Annotated[int, typer.Option(
+        help="Variogram parameter draws a year shared by the simulations, so the intervals "
+             "include the variogram's uncertainty (0 = fitted parameters only).")
+    ] = IndexOptions.param_draws,
     per_year_family: Annotated[bool, typer.Option(
         help="Opt in: choose the variogram family separately each year.")] = False,
     bathymetry: Annotated[Path | None, typer.Option(
@@ -227,8 +237,8 @@ def index(
     try:
         opts = IndexOptions(thresholds=_thresholds(thresholds), grid_km=grid_km, sims=sims,
                             seed=seed, min_casts=min_casts, min_coverage=min_coverage,
-                            method=method, variogram=variogram,
-                            per_year_family=per_year_family)
+                            method=method, variogram=variogram, fit=fit,
+                            param_draws=param_draws, per_year_family=per_year_family)
     except ConfigError as exc:
         raise ConfigError(str(exc).replace("index.", "--").replace("_", "-")) from None
     progress = Progress(TextColumn("[bold]Mapping survey years"), BarColumn(),
@@ -245,9 +255,11 @@ def index(
     out_console.print(f"{len(res.years)} years, {len(run.check.qc.casts)} casts used, "
                       f"{flagged} flagged (see qc.csv). Domain: {run.check.domain_source}.")
     if res.family_scores:
-        scores = ", ".join(f"{k} {v:.3f}" for k, v in res.family_scores.items())
-        out_console.print(f"Variogram family {res.family} chosen by pooled leave-one-out RMSE "
-                          f"(°C): {scores}; frozen for the next run.")
+        scores = ", ".join(f"{k} {v:.6g}" for k, v in res.family_scores.items())
+        how = ("pooled leave-one-out RMSE (°C)" if res.fit_method == "wls"
+               else "pooled -2 log-likelihood")
+        out_console.print(f"Variogram family {res.family} chosen by {how}: {scores}; frozen "
+                          "for the next run.")
     for note in run.notes:
         out_console.print(f"Note: {note}.")
     skipped = res.table[res.table["note"].fillna("").str.startswith("no indices")]

@@ -26,6 +26,7 @@ else:  # pragma: no cover
 METHODS = ("kriging", "idw")
 FAMILIES = ("exponential", "spherical", "matern", "gaussian")
 VARIOGRAM_CHOICES = (*FAMILIES, "auto")
+FIT_CHOICES = ("reml", "ml", "wls")  # the keys of coldindex.fitting.FIT_METHODS (test pins it)
 
 
 @dataclass(frozen=True)
@@ -45,11 +46,19 @@ class IndexOptions:
     min_casts
         Fewest usable casts for a year to get indices.
     min_coverage
-        Lowest share of the domain within 1.5 station spacings of a cast.
+        Lowest share of the domain within 1.5 reference station spacings of a cast (the
+        reference spacing is frozen with the domain).
     method
         ``kriging`` or ``idw``.
     variogram
-        Variogram family or ``auto`` (chosen by pooled cross-validation, then frozen).
+        Variogram family or ``auto`` (chosen by the pooled likelihood of the yearly fits,
+        or pooled cross-validation for ``wls``, then frozen).
+    fit
+        Variogram fit method: ``reml`` (restricted maximum likelihood, default), ``ml``
+        or ``wls`` (least squares on the binned empirical variogram).
+    param_draws
+        Variogram parameter draws per year for the simulations (0 = plug-in only);
+        the simulations are shared equally among the draws.
     per_year_family
         Opt-in: choose the family separately for every year.
     freeze_tolerance_c
@@ -68,6 +77,8 @@ class IndexOptions:
     min_coverage: float = 0.75
     method: str = "kriging"
     variogram: str = "auto"
+    fit: str = "reml"
+    param_draws: int = 20
     per_year_family: bool = False
     freeze_tolerance_c: float = 0.2
     max_bottom_c: float = 20.0
@@ -91,6 +102,10 @@ class IndexOptions:
                self.min_coverage)
         _check(self.method in METHODS, "index.method", f"one of {', '.join(METHODS)}",
                self.method)
+        _check(self.fit in FIT_CHOICES, "index.fit", f"one of {', '.join(FIT_CHOICES)}",
+               self.fit)
+        _check(0 <= self.param_draws <= 200, "index.param_draws", "a whole number in 0..200",
+               self.param_draws)
         _check(self.variogram in VARIOGRAM_CHOICES, "index.variogram",
                f"one of {', '.join(VARIOGRAM_CHOICES)}", self.variogram)
         _check(0.0 <= self.freeze_tolerance_c <= 2.0, "index.freeze_tolerance_c",
@@ -479,9 +494,11 @@ grid_km = 5.0             # equal-area grid cell side, km
 sims = 200                # conditional simulations a year (0 = off)
 seed = 20261201           # each year draws from SeedSequence([seed, year])
 min_casts = 30
-min_coverage = 0.75       # share of the domain within 1.5 station spacings of a cast
+min_coverage = 0.75       # share of the domain within 1.5 reference station spacings of a cast
 method = "kriging"        # kriging or idw
 variogram = "auto"        # exponential, spherical, matern, gaussian, or auto (then frozen)
+fit = "reml"              # variogram fit: reml, ml or wls
+param_draws = 20          # variogram parameter draws a year for the simulations (0 = off)
 
 [classify]
 columns = ["bottom_mean_c", "below_2c_km2"]

@@ -2,9 +2,11 @@
 
 The headline area below a threshold T is the *expected* area under the kriging
 model, ``sum(cell_area * P(T_cell < T))`` with P Gaussian from the kriging mean
-and standard deviation. The area of the kriged map below T, which kriging's
-smoothing biases low in the tails, is kept as ``_map``. Conditional simulations
-give ``_sd``, ``_lo90`` and ``_hi90`` of every area and of the mean.
+and standard deviation. The area of the kriged map below T is kept as ``_map``;
+kriging's smoothing biases it low for thresholds below the field's median and
+high above it. Conditional simulations, spread over draws of the variogram
+parameters from their posterior, give ``_sd``, ``_lo90`` and ``_hi90`` of every
+area and of the mean: interpolation uncertainty and variogram uncertainty.
 
 A year with too few casts or too little coverage gets no indices and the reason
 in ``note``: never a silent extrapolation.
@@ -19,17 +21,18 @@ import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike, NDArray
 from scipy.spatial import cKDTree
+from scipy.spatial.distance import cdist
 from scipy.special import ndtr
 
 from coldindex.config import IndexOptions
 from coldindex.domain import Domain, Grid, sample_lonlat_grid, station_spacing_km
 from coldindex.errors import InputError, TooFewDataError
+from coldindex.fitting import Fit, draw_variograms, fit_variogram, with_posterior
 from coldindex.interpolate import (
     FAMILIES,
     Kriging,
     Variogram,
-    conditional_simulations,
-    fit_variogram,
+    conditional_realizations,
     idw_loo,
     idw_predict,
 )
@@ -79,7 +82,10 @@ def area_weighted_mean(values: ArrayLike, cell_area: ArrayLike) -> float:
 
 def coverage_share(cast_xy: ArrayLike, cell_xy: ArrayLike, cell_area: ArrayLike,
                    spacing_km: float) -> float:
-    """Share of the domain area within 1.5 station spacings of a cast.
+    """Share of the domain area within 1.5 reference station spacings of a cast.
+
+    The spacing is a fixed reference (frozen with the domain), not the year's own,
+    so a denser year never scores lower than a sparser one on the same stations.
 
     Parameters
     ----------
@@ -90,7 +96,7 @@ def coverage_share(cast_xy: ArrayLike, cell_xy: ArrayLike, cell_area: ArrayLike,
     cell_area
         Cell areas. [km²]
     spacing_km
-        Station spacing: median nearest-neighbour distance between the casts. [km]
+        Reference station spacing (:func:`reference_spacing`). [km]
 
     Returns
     -------
@@ -102,6 +108,17 @@ def coverage_share(cast_xy: ArrayLike, cell_xy: ArrayLike, cell_area: ArrayLike,
     dist, _ = cKDTree(np.asarray(cast_xy, float)).query(np.asarray(cell_xy, float), k=1)
     a = np.asarray(cell_area, float)
     return float(a[dist <= COVERAGE_SPACINGS * spacing_km].sum() / a.sum())
+
+
+def reference_spacing(spacings: ArrayLike) -> float:
+    """Reference station spacing: the median of the years' station spacings. [km]
+
+    Frozen with the domain on the first run and reused, so coverage measures the
+    same thing every year (a year's own spacing shrinks as casts are added).
+    """
+    s = np.asarray(spacings, float)
+    s = s[np.isfinite(s) & (s > 0)]
+    return float(np.median(s)) if len(s) else float("nan")
 
 
 def interval_summary(samples: ArrayLike) -> tuple[float, float, float]:
@@ -131,7 +148,12 @@ class IndexResult:
     family_scores
         Pooled leave-one-out RMSE by family when the family was chosen. [°C]
     clipped_share
-        Largest share of embedding eigenvalue mass clipped in any year.
+        Largest share of embedding eigenvalue mass clipped in any year by a
+        simulation that kept the embedding (at most the clip tolerance).
+    reference_spacing_km
+        The reference station spacing used for coverage (to be frozen). [km]
+    fit_method
+        Variogram fit method used.
     """
 
     table: pd.DataFrame
@@ -142,44 +164,61 @@ class IndexResult:
     family: str
     family_scores: dict[str, float] = field(default_factory=dict)
     clipped_share: float = 0.0
+    reference_spacing_km: float = float("nan")
+    fit_method: str = "reml"
 
 
 def _year_casts(casts: pd.DataFrame) -> dict[int, pd.DataFrame]:
     return {int(y): g for y, g in casts.groupby("year", sort=True)}
 
 
-def _cv_fit(xy: FloatArray, z: FloatArray, family: str, drift: FloatArray | None
-            ) -> tuple[float, Variogram | None]:
+def _family_score(xy: FloatArray, z: FloatArray, family: str, drift: FloatArray | None,
+                  method: str) -> tuple[float, Fit | None]:
+    """The fit and its score: ``-2 log L`` for likelihood fits, LOO mean squared error for wls."""
     try:
-        vg = fit_variogram(xy, z, family, drift)
-        err, _ = Kriging(xy, z, vg, drift).loo()
+        fit = fit_variogram(xy, z, family, drift, method=method)
+        if method != "wls":
+            return fit.neg2loglik, fit
+        err, _ = Kriging(xy, z, fit.variogram, drift).loo()
     except (TooFewDataError, np.linalg.LinAlgError):
         return float("inf"), None
-    return float(np.mean(err**2)), vg
+    return float(np.mean(err**2)), fit
 
 
-def choose_family(samples: Sequence[tuple[FloatArray, FloatArray, FloatArray | None]]
-                  ) -> tuple[str, dict[str, float], list[Variogram | None]]:
-    """Choose the variogram family with the lowest pooled leave-one-out RMSE.
+def choose_family(samples: Sequence[tuple[FloatArray, FloatArray, FloatArray | None]],
+                  method: str = "reml") -> tuple[str, dict[str, float], list[Fit | None]]:
+    """Choose the variogram family that fits the usable years best.
+
+    With a likelihood fit (``reml``, ``ml``) the score is the pooled ``-2 log L``
+    over the years (every family has the same three parameters, so this is also
+    the pooled AIC); with ``wls`` it is the pooled leave-one-out RMSE, since
+    least squares has no likelihood to compare.
 
     Parameters
     ----------
     samples
         One ``(xy, values, drift)`` triple per usable year.
+    method
+        Fit method.
 
     Returns
     -------
     tuple
-        The family, the pooled RMSE of every family [°C], and the chosen family's
-        fitted variogram for each sample (reused, not refitted, by the caller).
+        The family, the score of every family (``-2 log L`` summed over years, or
+        RMSE [°C]), and the chosen family's fit for each sample (reused, not refitted).
     """
     scores: dict[str, float] = {}
-    fits: dict[str, list[Variogram | None]] = {}
+    fits: dict[str, list[Fit | None]] = {}
     for fam in FAMILIES:
-        results = [_cv_fit(xy, z, fam, d) for xy, z, d in samples]
-        mse = [r[0] for r in results]
+        results = [_family_score(xy, z, fam, d, method) for xy, z, d in samples]
+        vals = [r[0] for r in results]
         fits[fam] = [r[1] for r in results]
-        scores[fam] = float(np.sqrt(np.mean(mse))) if mse else float("inf")
+        if not vals:
+            scores[fam] = float("inf")
+        elif method == "wls":
+            scores[fam] = float(np.sqrt(np.mean(vals)))
+        else:
+            scores[fam] = float(np.sum(vals))
     best = min(FAMILIES, key=lambda f: (scores[f], FAMILIES.index(f)))
     return best, scores, fits[best]
 
@@ -187,7 +226,8 @@ def choose_family(samples: Sequence[tuple[FloatArray, FloatArray, FloatArray | N
 def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: IndexOptions,
                     bathymetry: tuple[FloatArray, FloatArray, FloatArray] | None = None,
                     frozen_family: str | None = None,
-                    progress: Callable[[int], None] | None = None) -> IndexResult:
+                    progress: Callable[[int], None] | None = None,
+                    frozen_spacing_km: float | None = None) -> IndexResult:
     """Compute the yearly indices from quality-controlled casts.
 
     Parameters
@@ -208,6 +248,9 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         is ``auto``.
     progress
         Called with each year when it is done.
+    frozen_spacing_km
+        Reference station spacing frozen by an earlier run [km]; None computes it
+        from these casts (:func:`reference_spacing`).
 
     Returns
     -------
@@ -234,12 +277,14 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         return g[["x_km", "y_km"]].to_numpy(float), g["bottom_c"].to_numpy(float), d
 
     # Screen years first: casts and coverage decide which years get indices.
+    spacings = {yr: station_spacing_km(*arrays(by_year[yr])[0].T) for yr in years}
+    ref = (float(frozen_spacing_km) if frozen_spacing_km is not None
+           else reference_spacing(list(spacings.values())))
     screen: dict[int, tuple[float, str]] = {}
     for yr in years:
         g = by_year[yr]
         xy, _, _ = arrays(g)
-        spacing = station_spacing_km(xy[:, 0], xy[:, 1])
-        cov = coverage_share(xy, cell_xy, cell_area, spacing) if len(g) >= 2 else 0.0
+        cov = coverage_share(xy, cell_xy, cell_area, ref) if len(g) >= 2 else 0.0
         note = ""
         if len(g) < options.min_casts:
             note = (f"no indices: {len(g)} casts, fewer than the minimum {options.min_casts} "
@@ -252,7 +297,7 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
 
     family = options.variogram
     scores: dict[str, float] = {}
-    fitted: dict[int, Variogram] = {}
+    fitted: dict[int, Fit] = {}
     if options.method == "idw":
         family = "idw"
     elif options.per_year_family:
@@ -261,13 +306,14 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         if frozen_family is not None:
             family = frozen_family
         elif usable:
-            family, scores, fits = choose_family([arrays(by_year[yr]) for yr in usable])
-            fitted = {yr: vg for yr, vg in zip(usable, fits, strict=True) if vg is not None}
+            family, scores, fits = choose_family([arrays(by_year[yr]) for yr in usable],
+                                                 options.fit)
+            fitted = {yr: f for yr, f in zip(usable, fits, strict=True) if f is not None}
         else:
             family = FAMILIES[0]
 
-    table = indices_table(options.thresholds, with_sims=options.sims > 0 and
-                          options.method == "kriging")
+    with_sims = options.sims > 0 and options.method == "kriging"
+    table = indices_table(options.thresholds, with_sims=with_sims)
     rows = []
     m = len(cell_area)
     est_all = np.full((len(years), m), np.nan)
@@ -296,15 +342,17 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
             else:
                 fam = family
                 if options.per_year_family:
-                    fam, _, per_year = choose_family([(xy, z, drift)])
+                    fam, _, per_year = choose_family([(xy, z, drift)], options.fit)
                     if per_year[0] is not None:
                         fitted[yr] = per_year[0]
-                vg: Variogram = fitted.get(yr) or fit_variogram(xy, z, fam, drift)
+                fit = fitted.get(yr) or fit_variogram(xy, z, fam, drift, method=options.fit)
+                vg: Variogram = fit.variogram
                 kr = Kriging(xy, z, vg, drift)
-                est, var, W = kr.predict(cell_xy, drift_cells, return_weights=options.sims > 0)
+                est, var, _ = kr.predict(cell_xy, drift_cells)
                 assert var is not None
                 sd = np.sqrt(var)
                 err, err_var = kr.loo()
+                notes = [f"variogram {n}" for n in fit.at_bound]
                 row.update(cv_rmse_c=float(np.sqrt(np.mean(err**2))),
                            cv_bias_c=float(np.mean(err)),
                            cv_msse=float(np.mean(err**2 / err_var)),
@@ -313,21 +361,23 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                 for t in options.thresholds:
                     row[area_column(t)] = area_below(est, sd, cell_area, t)
                     row[area_column(t) + "_map"] = area_below(est, None, cell_area, t)
-                if options.sims > 0:
+                if with_sims:
                     rng = np.random.default_rng(np.random.SeedSequence([options.seed, yr]))
-                    sims, emb = conditional_simulations(kr, grid.x, grid.y, grid.mask,
-                                                        options.sims, rng, drift_cells,
-                                                        weights=W)
-                    clipped = max(clipped, emb.clipped_share)
-                    means = sims @ cell_area / cell_area.sum()
+                    means, areas, method, sim_note, clip = simulate_summaries(
+                        kr, fit, xy, z, drift, grid, cell_xy, cell_area, drift_cells,
+                        options, rng)
+                    clipped = max(clipped, clip)
+                    row["simulation"] = method
+                    if sim_note:
+                        notes.append(sim_note)
                     for suffix, v in zip(("_sd", "_lo90", "_hi90"), interval_summary(means),
                                          strict=True):
                         row["bottom_mean_c" + suffix] = v
-                    for t in options.thresholds:
-                        areas = (sims < t).astype(float) @ cell_area
+                    for j, t in enumerate(options.thresholds):
                         for suffix, v in zip(("_sd", "_lo90", "_hi90"),
-                                             interval_summary(areas), strict=True):
+                                             interval_summary(areas[:, j]), strict=True):
                             row[area_column(t) + suffix] = v
+                row["note"] = "; ".join(notes)
                 est_all[k] = est
                 sd_all[k] = sd
         rows.append(row)
@@ -335,4 +385,59 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
             progress(yr)
     df = pd.DataFrame(rows).reindex(columns=table.names)
     return IndexResult(table=df, years=years, estimate=est_all, sd=sd_all, casts=casts,
-                       family=family, family_scores=scores, clipped_share=clipped)
+                       family=family, family_scores=scores, clipped_share=clipped,
+                       reference_spacing_km=ref, fit_method=options.fit)
+
+
+def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
+                       drift: FloatArray | None, grid: Grid, cell_xy: FloatArray,
+                       cell_area: FloatArray, drift_cells: FloatArray | None,
+                       options: IndexOptions, rng: np.random.Generator
+                       ) -> tuple[FloatArray, FloatArray, str, str, float]:
+    """Per-realization domain mean and areas, over draws of the variogram parameters.
+
+    ``options.param_draws`` variograms are drawn from the fit's posterior
+    (:func:`coldindex.fitting.draw_variograms`); each gets an equal share of the
+    ``options.sims`` realizations, kriged with its own parameters. With no draws
+    (or a ``wls`` fit) every realization uses the point estimate.
+
+    Returns
+    -------
+    tuple
+        Means (n,) [°C], areas (n, thresholds) [km²], the simulation method
+        (``circulant``, ``exact`` or ``circulant+exact``), a note for the year
+        (empty when nothing to say) and the largest clipped share kept.
+    """
+    n = options.sims
+    k = min(options.param_draws, n)
+    if k > 0 and fit.method != "wls":
+        fit = with_posterior(fit, xy, z, drift)
+        draws = draw_variograms(fit, k, rng)
+    else:
+        draws = [fit.variogram]
+    counts = np.full(len(draws), n // len(draws))
+    counts[: n % len(draws)] += 1
+    dist = cdist(cell_xy, xy)
+    means, areas, methods, coarse = [], [], set(), set()
+    clipped = 0.0
+    for vg, c in zip(draws, counts, strict=True):
+        if c == 0:
+            continue
+        kd = kr if vg == kr.vg else Kriging(xy, z, vg, drift)
+        real = conditional_realizations(kd, grid.x, grid.y, grid.mask, cell_area, int(c), rng,
+                                        drift_cells, cell_dist=dist)
+        mu, ar = real.summaries(options.thresholds)
+        means.append(mu)
+        areas.append(ar)
+        methods.add(real.method)
+        if real.method == "exact":
+            coarse.add(real.node_km)
+        else:
+            clipped = max(clipped, real.clipped_share)
+    method = "+".join(sorted(methods)) if len(methods) > 1 else methods.pop()
+    note = ""
+    if coarse:
+        note = ("simulated exactly (long length scale: circulant embedding would clip)"
+                + (f" on {max(coarse):.3g} km blocks" if max(coarse) > grid.cell_km + 1e-9
+                   else ""))
+    return np.concatenate(means), np.concatenate(areas), method, note, clipped

@@ -130,7 +130,11 @@ def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: 
     frozen = {"projection": check.domain.crs.srs, "grid_km": options.grid_km,
               "domain_source": check.domain_source,
               "variogram_family": result.family if result.family in FAMILIES else None,
-              "family_scores_rmse_c": result.family_scores or None}
+              "family_scores": result.family_scores or None,
+              "family_score": ("pooled -2 log L" if result.fit_method != "wls"
+                               else "pooled LOO RMSE (degC)"),
+              "reference_spacing_km": (round(result.reference_spacing_km, 6)
+                                       if np.isfinite(result.reference_spacing_km) else None)}
     written = [
         writers.write_csv(check.qc.table.drop(columns=["doy"]).reindex(
             columns=["row", "year", "station", "lat", "lon", "bottom_c", "flag", "detail"]),
@@ -242,11 +246,13 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
         notes.append(f"variogram family {frozen_family} reused from {out / FROZEN_NAME}")
     if on_start is not None:
         on_start(int(check.qc.casts["year"].nunique()))
+    frozen_spacing = frozen.get("reference_spacing_km")
+    if frozen and frozen_spacing is None:
+        notes.append(f"{out / FROZEN_NAME} has no reference station spacing (made by an older "
+                     "version); it is computed once from these casts and frozen from now on")
     result = compute_indices(check.qc.casts, check.domain, grid, options, bathy,
-                             frozen_family=frozen_family, progress=progress)
-    if result.clipped_share > 0:
-        notes.append(f"circulant embedding clipped {result.clipped_share:.2e} of the "
-                     "eigenvalue mass")
+                             frozen_family=frozen_family, progress=progress,
+                             frozen_spacing_km=frozen_spacing)
 
     inputs = {"casts": {"path": str(casts_path), "sha256": writers.sha256_file(casts_path)}}
     for name, p in (("domain", domain_path), ("bathymetry", bathymetry_path)):
@@ -545,8 +551,18 @@ def revisions_table(current: pd.DataFrame, previous: pd.DataFrame | None, cur_pr
         if a != b:
             what = "variogram family" if key == "variogram_family" else "domain geometry"
             causes_all.append(f"{what} changed ({a} -> {b})")
+    sa = (prev_prov.get("frozen") or {}).get("reference_spacing_km")
+    sb = (cur_prov.get("frozen") or {}).get("reference_spacing_km")
+    if sa != sb:
+        causes_all.append(f"coverage now measured against a frozen reference spacing ({sb} km)"
+                          if sa is None else f"coverage reference spacing changed ({sa} -> "
+                          f"{sb} km)")
     pa, pb = prev_prov.get("parameters", {}), cur_prov.get("parameters", {})
-    changed = sorted(k for k in set(pa) | set(pb) if pa.get(k) != pb.get(k))
+    # Releases made before the fit method was a parameter were fitted by least squares.
+    fa_, fb_ = pa.get("fit", "wls"), pb.get("fit", "wls")
+    if fa_ != fb_:
+        causes_all.append(f"variogram fit method changed ({fa_} -> {fb_})")
+    changed = sorted(k for k in set(pa) | set(pb) if pa.get(k) != pb.get(k) and k != "fit")
     if changed:
         causes_all.append(f"parameters changed ({', '.join(changed)})")
     ha = prev_prov.get("casts_sha256_by_year", {})
@@ -763,7 +779,13 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     grid = make_grid(check.domain, opts.grid_km)
     _check_memory(check.qc.casts, grid, opts)
     bathy = readers.read_bathymetry(cfg.inputs.bathymetry) if cfg.inputs.bathymetry else None
-    res = compute_indices(check.qc.casts, check.domain, grid, opts, bathy, frozen_family=family)
+    frozen_spacing = frozen_prev.get("reference_spacing_km")
+    if frozen_prev and frozen_spacing is None:
+        notes.append("the previous release has no reference station spacing (an older "
+                     "version); coverage now uses one computed from these casts, frozen from "
+                     "now on")
+    res = compute_indices(check.qc.casts, check.domain, grid, opts, bathy, frozen_family=family,
+                          frozen_spacing_km=frozen_spacing)
     indices = res.table
     index_files, frozen = _write_index_outputs(rel, check, res, grid, opts)
     written += index_files

@@ -1,9 +1,10 @@
 """Cast quality control: every cast gets ``ok`` or a named reason.
 
 Flagged casts are excluded from the indices and listed, never silently
-dropped. Duplicates are resolved by an order-free rule: identical copies (same
-year and station, or same year and position, and the same values) collapse to
-one; conflicting copies are all flagged. A file whose latitudes are mostly out
+dropped. Duplicates share a year, a station (a position rounded to 1 km only for
+casts without a station name) and a date (and time, when given); they are
+resolved by an order-free rule: identical copies collapse to one, conflicting
+copies are all flagged. A file whose latitudes are mostly out
 of range (swapped columns) is refused as a whole.
 """
 
@@ -238,9 +239,16 @@ def run_qc(raw: pd.DataFrame, domain: Domain | None = None, *, source: str = "ca
         pos[ok] = _position_key(df.loc[ok, "lat"], df.loc[ok, "lon"])
     has_station = df["station"].str.len().gt(0)
     df["station"] = df["station"].where(has_station, pos)
+    # A duplicate is the same station (a position only without a station name) on the
+    # same date (and time, when given); repeat casts on other days are kept.
+    when_key = when.dt.strftime("%Y-%m-%d %H:%M:%S").str.removesuffix(" 00:00:00")
+    date_key = when_key.where(when.notna(), df["date"].str.strip())
+    on_date = pd.Series(np.where(date_key.str.len() > 0, " on " + date_key, ""),
+                        index=df.index)
     if has_station.any():
-        _resolve_duplicates(df, df["station"], flag, detail, "station")
-    _resolve_duplicates(df, pos, flag, detail, "position")
+        _resolve_duplicates(df, (df["station"] + on_date).where(has_station), flag, detail,
+                            "station")
+    _resolve_duplicates(df, (pos + on_date).where(~has_station), flag, detail, "position")
 
     dates = pd.to_datetime(df["date"].where(df["date"].str.len() > 0), errors="coerce",
                            format="mixed")

@@ -207,9 +207,10 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
         Column("n_casts", "1", "Casts used after quality control.", "int"),
         Column("median_doy", "day of year", "Median day of year of the casts used (blank "
                "without dates).", "float"),
-        Column("coverage", "1", "Share of the domain area within 1.5 station spacings of a "
-               "used cast; station spacing is the median nearest-neighbour distance between "
-               "the year's casts.", "float"),
+        Column("coverage", "1", "Share of the domain area within 1.5 reference station "
+               "spacings of a used cast; the reference spacing (median over the years of the "
+               "median nearest-neighbour distance between a year's casts) is frozen with the "
+               "domain, so a denser year never scores lower.", "float"),
         Column("bottom_mean_c", "degC", "Area-weighted mean of the kriged bottom temperature "
                "over the domain.", "float"),
     ]
@@ -225,8 +226,9 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
                            "sum of cell area times the kriging probability of being below.",
                            "float"))
         cols.append(Column(f"{name}_map", "km2", f"Area of the kriged map below {tl} °C "
-                           "(biased low in the tails by kriging's smoothing; kept for "
-                           "continuity with map-based practice).", "float"))
+                           "(kriging's smoothing biases it low for thresholds below the "
+                           "field's median and high above it; kept for continuity with "
+                           "map-based practice).", "float"))
         if with_sims:
             cols += [
                 Column(f"{name}{s}", "km2", f"Area below {tl} °C: {m}.")
@@ -237,8 +239,17 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
                "the casts.", "float"),
         Column("cv_bias_c", "degC", "Leave-one-out cross-validation mean error (observed minus "
                "predicted).", "float"),
-        Column("cv_msse", "1", "Leave-one-out mean standardized squared error (near 1 when the "
-               "kriging variance is honest; blank for IDW).", "float"),
+        Column("cv_msse", "1", "Leave-one-out mean standardized squared error of the casts "
+               "(noisy prediction variance, nugget included; near 1 when the fitted variogram "
+               "matches the data at the casts' spacing; it does not check the areas' "
+               "intervals; blank for IDW).", "float"),
+    ]
+    if with_sims:
+        cols.append(Column("simulation", "-", "How the conditional simulations were drawn: "
+                           "circulant (circulant embedding on the grid), exact (Cholesky "
+                           "factor, for long length scales), or both across the parameter "
+                           "draws.", "str"))
+    cols += [
         Column("variogram", "-", "Variogram family and fitted parameters (lengths in km, "
                "variances in degC2).", "str"),
         Column("note", "-", "Why a value is blank or how the year was treated.", "str"),

@@ -6,7 +6,6 @@ from coldindex.interpolate import (
     Kriging,
     Variogram,
     correlation,
-    fit_variogram,
     idw_loo,
     idw_predict,
 )
@@ -141,25 +140,6 @@ def test_external_drift_reproduces_linear_trend():
     kr = Kriging(xy, z, Variogram("exponential", 0.1, 50.0, 0.01), depth)
     est, _, _ = kr.predict([[100.0, 100.0]], [150.0])
     assert est[0] == pytest.approx(0.02 * 150 - 1.0, abs=1e-8)
-
-
-def test_fit_variogram_recovers_scale():
-    # Synthetic truth by construction: exponential fields (len 50 km, sill 1, nugget 0.05)
-    # simulated by Cholesky over 600 km; a single realization varies, so judge the median.
-    from scipy.spatial.distance import cdist
-
-    truth = Variogram("exponential", 1.0, 50.0, 0.05)
-    lens, sills = [], []
-    for seed in range(6):
-        rng = np.random.default_rng(seed)
-        xy = rng.uniform(0, 600, (400, 2))
-        K = truth.covariance(cdist(xy, xy)) + 0.05 * np.eye(400)
-        z = np.linalg.cholesky(K) @ rng.standard_normal(400)
-        vg = fit_variogram(xy, z, "exponential")
-        lens.append(vg.len_scale)
-        sills.append(vg.sill + vg.nugget)
-    assert 30 < np.median(lens) < 80
-    assert 0.7 < np.median(sills) < 1.4
 
 
 def test_idw_exact_and_loo(stations):

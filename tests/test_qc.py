@@ -87,3 +87,38 @@ def test_year_hashes_ignore_row_order_but_see_values():
     changed = list(GOOD)
     changed[2] = ("2001", "S2", "60.5", "179.2", "1.1")
     assert year_hashes(run_qc(raw(changed)).table) != year_hashes(t1)
+
+
+def _raw_dated(rows):
+    df = pd.DataFrame(rows, columns=["year", "station", "lat", "lon", "bottom_c", "date"])
+    df.insert(0, "row", range(1, len(df) + 1))
+    return df
+
+
+def test_named_stations_at_one_position_are_not_duplicates():
+    # Two different named stations that round to the same 1 km cell: both kept.
+    rows = [("2001", "T01-S01", "60.5", "179.0", "1.0", ""),
+            ("2001", "T01-S02", "60.5001", "179.0001", "1.5", "")]
+    assert set(run_qc(_raw_dated(rows)).table["flag"]) == {"ok"}
+
+
+def test_repeat_casts_on_other_days_are_kept_same_day_are_duplicates():
+    rows = [("2001", "A", "60.5", "179.0", "1.0", "2001-07-01"),
+            ("2001", "A", "60.5", "179.0", "1.4", "2001-07-09"),  # a repeat visit: kept
+            ("2001", "B", "61.0", "179.5", "2.0", "2001-07-02"),
+            ("2001", "B", "61.0", "179.5", "2.3", "2001-07-02")]  # same day: conflict
+    flags = run_qc(_raw_dated(rows)).table["flag"].tolist()
+    assert flags == ["ok", "ok", "duplicate_conflict", "duplicate_conflict"]
+    # Same date, different times: two casts, not duplicates.
+    rows_t = [("2001", "B", "61.0", "179.5", "2.0", "2001-07-02T06:00"),
+              ("2001", "B", "61.0", "179.5", "2.3", "2001-07-02T18:00")]
+    assert set(run_qc(_raw_dated(rows_t)).table["flag"]) == {"ok"}
+
+
+def test_unnamed_casts_on_the_same_day_at_one_position_are_duplicates():
+    rows = [("2001", "", "60.5", "179.0", "1.0", "2001-07-01"),
+            ("2001", "", "60.5001", "179.0001", "1.0", "2001-07-01"),
+            ("2001", "", "60.5", "179.0", "1.7", "2001-07-05")]
+    flags = run_qc(_raw_dated(rows)).table["flag"].tolist()
+    # The first two differ only below 1 km and in the last digits: a conflict (values differ).
+    assert flags[:2] == ["duplicate_conflict", "duplicate_conflict"] and flags[2] == "ok"

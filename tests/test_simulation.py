@@ -9,7 +9,7 @@ from coldindex.interpolate import (
     Kriging,
     Variogram,
     circulant_embedding,
-    conditional_simulations,
+    conditional_realizations,
     unconditional_fields,
 )
 
@@ -53,7 +53,10 @@ def sims():
     kr = Kriging(xy, z, vg)
     mask = np.ones((NY, NX), bool)
     mask[:5, :8] = False  # an irregular domain
-    out, _ = conditional_simulations(kr, GX, GY, mask, 3000, np.random.default_rng(9))
+    real = conditional_realizations(kr, GX, GY, mask, np.full(mask.sum(), CELL**2), 3000,
+                                    np.random.default_rng(9))
+    assert real.method == "circulant" and real.node_of_cell is None
+    out = real.values
     xx, yy = np.meshgrid(GX, GY)
     cells = np.column_stack([xx[mask], yy[mask]])
     est, var, _ = kr.predict(cells)
@@ -88,3 +91,58 @@ def test_simulated_area_approaches_expected_area(sims):
         simulated = (out < t).astype(float) @ area
         se = simulated.std() / np.sqrt(len(simulated))
         assert simulated.mean() == pytest.approx(expected, abs=4 * se + 1.0)
+
+
+def _block_kriging_sd(kr, cells, area):
+    """Exact SD of the domain-mean error from the weights: a^T Var(Y - W Z) a / A^2."""
+    from scipy.spatial.distance import cdist
+
+    W = kr.weights(cells)
+    Ccc = kr.vg.covariance(cdist(cells, cells))
+    Ccz = kr.vg.covariance(cdist(cells, kr.xy))
+    a = area / area.sum()
+    wa = W.T @ a
+    return float(np.sqrt(a @ Ccc @ a - 2 * wa @ (Ccz.T @ a) + wa @ kr.K @ wa))
+
+
+@pytest.mark.parametrize("family", ["exponential", "matern"])
+@pytest.mark.parametrize("share", [0.5, 1.0])
+def test_long_range_simulation_is_exact(family, share):
+    # Length scales of 0.5 and 1 domain width: the 2.5x embedding would clip, so the exact
+    # simulation must take over. Truth by construction: per-cell variance of the
+    # realizations = kriging variance, SD of the domain mean = the exact block-kriging SD.
+    width = NX * CELL
+    vg = Variogram(family, 1.0, share * width, 0.02)
+    assert circulant_embedding((NY, NX), CELL, vg).clipped_share > 1e-6
+    rng = np.random.default_rng(11)
+    xy = rng.uniform([0, 0], [width, NY * CELL], size=(40, 2))
+    z = rng.normal(0, 1, 40)
+    kr = Kriging(xy, z, vg)
+    mask = np.ones((NY, NX), bool)
+    mask[:6, :10] = False
+    area = np.full(mask.sum(), CELL**2)
+    real = conditional_realizations(kr, GX, GY, mask, area, 2000, np.random.default_rng(3))
+    assert real.method == "exact" and real.clipped_share > 1e-6
+    xx, yy = np.meshgrid(GX, GY)
+    cells = np.column_stack([xx[mask], yy[mask]])
+    _, var, _ = kr.predict(cells)
+    ratio = np.median(real.values.var(axis=0, ddof=1) / var)
+    assert 0.9 <= ratio <= 1.1
+    means, _ = real.summaries([0.0])
+    assert 0.9 <= means.std(ddof=1) / _block_kriging_sd(kr, cells, area) <= 1.1
+
+
+def test_exact_fallback_on_blocks_of_cells():
+    # More active cells than exact nodes: blocks of cells carry their summed areas.
+    vg = Variogram("exponential", 1.0, NX * CELL, 0.02)
+    rng = np.random.default_rng(12)
+    xy = rng.uniform([0, 0], [NX * CELL, NY * CELL], size=(30, 2))
+    kr = Kriging(xy, rng.normal(0, 1, 30), vg)
+    mask = np.ones((NY, NX), bool)
+    area = np.full(mask.sum(), CELL**2)
+    real = conditional_realizations(kr, GX, GY, mask, area, 20, np.random.default_rng(1),
+                                    exact_max_nodes=300)
+    assert real.method == "exact" and real.node_of_cell is not None
+    assert real.values.shape[1] <= 300
+    assert real.node_area.sum() == pytest.approx(area.sum())
+    assert real.node_km == pytest.approx(2 * CELL)
