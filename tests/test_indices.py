@@ -156,3 +156,37 @@ def test_bathymetry_drift_and_per_year_family(box_domain):
 
     with pytest.raises(InputError, match="does not cover"):
         compute_indices(qc_casts(df), box_domain, grid, opts, small)
+
+
+def test_coverage_uses_a_fixed_reference_so_denser_years_never_score_lower(box_domain):
+    # Same stations; the dense year adds casts between them. Against its own (shrinking)
+    # spacing the dense year could score lower; against the frozen reference it cannot.
+    from coldindex.domain import station_spacing_km
+    from coldindex.indices import reference_spacing
+
+    grid = make_grid(box_domain, 5.0)
+    cells, area = grid.active_xy(), grid.active_area()
+    sparse = qc_casts(synthetic_casts(years=(2001,), n_side=7))
+    dense = qc_casts(synthetic_casts(years=(2001,), n_side=13))
+    xy = {k: np.column_stack(box_domain.to_xy(c["lon"].to_numpy(), c["lat"].to_numpy()))
+          for k, c in (("sparse", sparse), ("dense", dense))}
+    own = {k: coverage_share(v, cells, area, station_spacing_km(*v.T)) for k, v in xy.items()}
+    ref = reference_spacing([station_spacing_km(*v.T) for v in xy.values()])
+    fixed = {k: coverage_share(v, cells, area, ref) for k, v in xy.items()}
+    assert own["dense"] < own["sparse"]  # the old rule penalised the denser year
+    assert fixed["dense"] >= fixed["sparse"]
+
+
+def test_revisions_name_the_new_fit_and_coverage_rule_of_an_older_release():
+    from coldindex.pipeline import revisions_table
+
+    prev = pd.DataFrame({"year": [2001], "below_0c_km2": [100.0]})
+    cur = pd.DataFrame({"year": [2001], "below_0c_km2": [110.0]})
+    old_prov = {"version": "0.1.0", "frozen": {"variogram_family": "exponential"},
+                "parameters": {"sims": 200}}
+    new_prov = {"version": "0.1.0",
+                "frozen": {"variogram_family": "exponential", "reference_spacing_km": 25.0},
+                "parameters": {"sims": 200, "fit": "reml"}}
+    cause = revisions_table(cur, prev, new_prov, old_prov, 1e-6)["cause"].iloc[0]
+    assert "variogram fit method changed (wls -> reml)" in cause
+    assert "frozen reference spacing (25.0 km)" in cause
