@@ -847,6 +847,14 @@ def _cuts_planted(out: Path) -> None:
     _cuts(p, column="below_0c_km2", low=1e9, high=2e9, rule="tercile")
 
 
+def _lock_link(out: Path) -> None:
+    victim = out.parent / "victim.txt"
+    victim.write_text("precious\n")
+    if os.path.lexists(out / ".coldindex.lock"):
+        (out / ".coldindex.lock").unlink()
+    (out / ".coldindex.lock").symlink_to(victim)
+
+
 def _format_changed(out: Path) -> None:
     p = out / "release-1" / "provenance.json"
     d = json.loads(p.read_text())
@@ -867,6 +875,7 @@ RELEASE_ATTACKS: dict[str, tuple[Callable[[Path], None], str, int]] = {
     "cuts_edited": (_cuts_edited, "bottom_mean_c.json does not match", 2),
     "cuts_planted": (_cuts_planted, "below_0c_km2.json does not match", 2),
     "format_changed": (_format_changed, "incompatible release format", 2),
+    "lock_link": (_lock_link, ".coldindex.lock is a symbolic link", 3),
 }
 
 
@@ -880,6 +889,8 @@ def test_release_attacks_are_refused_before_any_work(release, tmp_path: Path, at
     refused(code, text, needle, exit_code=exit_code)
     assert sorted(p.name for p in out.iterdir()) == before
     assert not list(out.glob("release-2*")) and not list(out.glob(".release-*"))
+    victim = out.parent / "victim.txt"
+    assert not victim.exists() or victim.read_text() == "precious\n"
 
 
 def test_symlinked_temporary_never_redirects_the_pointer(release, tmp_path: Path):
