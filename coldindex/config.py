@@ -67,6 +67,12 @@ class IndexOptions:
         Highest plausible bottom temperature. [°C]
     default_salinity
         Practical salinity used for the freezing point when a cast has none.
+    outlier_z
+        Spatial-outlier threshold on the size of a cast's leave-one-out standardized
+        residual from the year's fit (0 = off); flagged casts are kept out of the refit.
+    depth_zones
+        Depth zones for ``regions.csv``, e.g. ``0-50,50-100,100-200`` [m] (needs the
+        bathymetry); empty for none.
     """
 
     thresholds: tuple[float, ...] = (2.0, 0.0)
@@ -83,6 +89,8 @@ class IndexOptions:
     freeze_tolerance_c: float = 0.2
     max_bottom_c: float = 20.0
     default_salinity: float = 34.0
+    outlier_z: float = 4.0  # Common practice, no single source: |z| > 4 is rare under N(0,1)
+    depth_zones: str = ""
 
     def __post_init__(self) -> None:
         _check(len(self.thresholds) > 0, "index.thresholds", "at least one threshold", "[]")
@@ -112,6 +120,16 @@ class IndexOptions:
                "a value in 0..2 °C", self.freeze_tolerance_c)
         _check(0.0 < self.default_salinity <= 42.0, "index.default_salinity",
                "a practical salinity in 0..42", self.default_salinity)
+        _check(self.outlier_z == 0.0 or 2.5 <= self.outlier_z <= 20.0, "index.outlier_z",
+               "0 (off) or a value in 2.5..20", self.outlier_z)
+        if self.depth_zones:
+            from coldindex.errors import InputError
+            from coldindex.regions import parse_depth_zones
+
+            try:
+                parse_depth_zones(self.depth_zones, "index.depth_zones")
+            except InputError as exc:
+                raise ConfigError(str(exc)) from None
 
 
 @dataclass(frozen=True)
@@ -248,6 +266,7 @@ class Inputs:
     ice: Path | None = None
     trajectories: tuple[Path, ...] = ()
     coastline: Path | None = None
+    regions: Path | None = None
 
 
 @dataclass(frozen=True)

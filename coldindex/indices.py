@@ -36,7 +36,8 @@ from coldindex.interpolate import (
     idw_loo,
     idw_predict,
 )
-from coldindex.schema import area_column, indices_table
+from coldindex.regions import RegionWeights, node_weights
+from coldindex.schema import area_column, indices_table, regions_table
 
 FloatArray = NDArray[np.float64]
 COVERAGE_SPACINGS = 1.5
@@ -154,6 +155,13 @@ class IndexResult:
         The reference station spacing used for coverage (to be frozen). [km]
     fit_method
         Variogram fit method used.
+    regions
+        The long table of region and depth-zone indices (``regions.csv``), or None.
+    outliers
+        Casts flagged as spatial outliers and kept out of the fit: ``row``, ``year``,
+        ``station`` and the leave-one-out standardized residual ``z``.
+    draws
+        Per year, the per-realization summaries of the domain and of every region.
     """
 
     table: pd.DataFrame
@@ -166,6 +174,10 @@ class IndexResult:
     clipped_share: float = 0.0
     reference_spacing_km: float = float("nan")
     fit_method: str = "reml"
+    regions: pd.DataFrame | None = None
+    outliers: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(
+        columns=["row", "year", "station", "z"]))
+    draws: dict[int, SimSummaries] = field(default_factory=dict)
 
 
 def _year_casts(casts: pd.DataFrame) -> dict[int, pd.DataFrame]:
@@ -227,7 +239,8 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                     bathymetry: tuple[FloatArray, FloatArray, FloatArray] | None = None,
                     frozen_family: str | None = None,
                     progress: Callable[[int], None] | None = None,
-                    frozen_spacing_km: float | None = None) -> IndexResult:
+                    frozen_spacing_km: float | None = None,
+                    regions: RegionWeights | None = None) -> IndexResult:
     """Compute the yearly indices from quality-controlled casts.
 
     Parameters
@@ -251,6 +264,10 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
     frozen_spacing_km
         Reference station spacing frozen by an earlier run [km]; None computes it
         from these casts (:func:`reference_spacing`).
+    regions
+        Regions and depth zones as per-cell area weights
+        (:mod:`coldindex.regions`); each gets every index, from the same kriging
+        and the same conditional realizations as the domain.
 
     Returns
     -------
@@ -315,6 +332,10 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
     with_sims = options.sims > 0 and options.method == "kriging"
     table = indices_table(options.thresholds, with_sims=with_sims)
     rows = []
+    region_rows: list[dict[str, object]] = []
+    region_w = regions.weights if regions is not None else None
+    outliers: list[pd.DataFrame] = []
+    draws: dict[int, SimSummaries] = {}
     m = len(cell_area)
     est_all = np.full((len(years), m), np.nan)
     sd_all = np.full((len(years), m), np.nan)
@@ -339,6 +360,9 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                     row[area_column(t)] = a
                     row[area_column(t) + "_map"] = a
                 est_all[k] = est
+                if regions is not None:
+                    region_rows += _region_rows(yr, regions, est, None, options.thresholds,
+                                                None, "idw: areas are map areas")
             else:
                 fam = family
                 if options.per_year_family:
@@ -346,13 +370,29 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                     if per_year[0] is not None:
                         fitted[yr] = per_year[0]
                 fit = fitted.get(yr) or fit_variogram(xy, z, fam, drift, method=options.fit)
+                kr = Kriging(xy, z, fit.variogram, drift)
+                flagged = spatial_outliers(kr, options.outlier_z)
+                if flagged.any():
+                    # Fit, flag, refit: an outlier inflates the fit that judges it.
+                    out = g.loc[flagged, ["row", "year", "station"]].copy()
+                    out["z"] = standardized_loo(kr)[flagged]
+                    outliers.append(out)
+                    g = g.loc[~flagged]
+                    xy, z, drift = arrays(g)
+                    row["n_casts"] = len(g)
+                    row["median_doy"] = float(g["doy"].median())
+                    fit = fit_variogram(xy, z, fit.variogram.family, drift, method=options.fit)
+                    kr = Kriging(xy, z, fit.variogram, drift)
                 vg: Variogram = fit.variogram
-                kr = Kriging(xy, z, vg, drift)
                 est, var, _ = kr.predict(cell_xy, drift_cells)
                 assert var is not None
                 sd = np.sqrt(var)
                 err, err_var = kr.loo()
                 notes = [f"variogram {n}" for n in fit.at_bound]
+                if flagged.any():
+                    notes.append(f"{int(flagged.sum())} spatial outlier"
+                                 f"{'s' if flagged.sum() > 1 else ''} kept out of the fit "
+                                 f"(|z| > {options.outlier_z:g})")
                 row.update(cv_rmse_c=float(np.sqrt(np.mean(err**2))),
                            cv_bias_c=float(np.mean(err)),
                            cv_msse=float(np.mean(err**2 / err_var)),
@@ -361,52 +401,206 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                 for t in options.thresholds:
                     row[area_column(t)] = area_below(est, sd, cell_area, t)
                     row[area_column(t) + "_map"] = area_below(est, None, cell_area, t)
+                sims: SimSummaries | None = None
                 if with_sims:
                     rng = np.random.default_rng(np.random.SeedSequence([options.seed, yr]))
-                    means, areas, method, sim_note, clip = simulate_summaries(
-                        kr, fit, xy, z, drift, grid, cell_xy, cell_area, drift_cells,
-                        options, rng)
-                    clipped = max(clipped, clip)
-                    row["simulation"] = method
-                    if sim_note:
-                        notes.append(sim_note)
-                    for suffix, v in zip(("_sd", "_lo90", "_hi90"), interval_summary(means),
-                                         strict=True):
-                        row["bottom_mean_c" + suffix] = v
-                    for j, t in enumerate(options.thresholds):
-                        for suffix, v in zip(("_sd", "_lo90", "_hi90"),
-                                             interval_summary(areas[:, j]), strict=True):
-                            row[area_column(t) + suffix] = v
+                    sims = simulate_summaries(kr, fit, xy, z, drift, grid, cell_xy, cell_area,
+                                              drift_cells, options, rng, region_w)
+                    draws[yr] = sims
+                    clipped = max(clipped, sims.clipped)
+                    row["simulation"] = sims.method
+                    if sims.note:
+                        notes.append(sims.note)
+                    _put_intervals(row, sims.means, sims.areas, options.thresholds)
                 row["note"] = "; ".join(notes)
+                if regions is not None:
+                    region_rows += _region_rows(yr, regions, est, sd, options.thresholds, sims,
+                                                "")
                 est_all[k] = est
                 sd_all[k] = sd
         rows.append(row)
         if progress is not None:
             progress(yr)
     df = pd.DataFrame(rows).reindex(columns=table.names)
+    reg_df = None
+    if regions is not None:
+        reg_table = regions_table(options.thresholds, with_sims=with_sims)
+        reg_df = pd.DataFrame(region_rows).reindex(columns=reg_table.names)
+        for yr in years:  # years without indices still get one blank row per region
+            if yr not in set(reg_df["year"]):
+                blank = pd.DataFrame({"year": yr, "region": list(regions.names),
+                                      "region_km2": regions.weights.sum(axis=1),
+                                      "note": screen[yr][1]})
+                reg_df = pd.concat([reg_df, blank.reindex(columns=reg_table.names)])
+        order = {n: i for i, n in enumerate(regions.names)}
+        reg_df = (reg_df.assign(_o=reg_df["region"].map(order))
+                  .sort_values(["year", "_o"], kind="stable").drop(columns="_o")
+                  .reset_index(drop=True))
+    out_df = (pd.concat(outliers, ignore_index=True) if outliers
+              else pd.DataFrame(columns=["row", "year", "station", "z"]))
+    if len(out_df):
+        casts = casts[~casts["row"].isin(out_df["row"])].reset_index(drop=True)
     return IndexResult(table=df, years=years, estimate=est_all, sd=sd_all, casts=casts,
                        family=family, family_scores=scores, clipped_share=clipped,
-                       reference_spacing_km=ref, fit_method=options.fit)
+                       reference_spacing_km=ref, fit_method=options.fit, regions=reg_df,
+                       outliers=out_df, draws=draws)
+
+
+def standardized_loo(kr: Kriging) -> FloatArray:
+    """Leave-one-out standardized residuals of the casts. [1]
+
+    The error of predicting each cast from all the others, divided by the
+    standard deviation of a new noisy observation there (smooth part plus
+    nugget), so a cast consistent with the fitted field has ``z ~ N(0, 1)``.
+
+    References
+    ----------
+    Dubrule, O. (1983). Cross validation of kriging in a unique neighborhood.
+    Mathematical Geology 15, 687-699, eqs. 10-11.
+    """
+    err, var = kr.loo()
+    return np.asarray(err / np.sqrt(var), float)
+
+
+def spatial_outliers(kr: Kriging, z_max: float) -> NDArray[np.bool_]:
+    """Casts whose leave-one-out standardized residual exceeds ``z_max`` in size.
+
+    Parameters
+    ----------
+    kr
+        The year's kriging with its fitted variogram.
+    z_max
+        Threshold on ``|z|``; 0 turns the check off.
+
+    Returns
+    -------
+    numpy.ndarray
+        Boolean mask over the casts.
+    """
+    if not z_max > 0:
+        return np.zeros(len(kr.z), dtype=bool)
+    return np.abs(standardized_loo(kr)) > z_max
+
+
+def _put_intervals(row: dict[str, object], means: FloatArray, areas: FloatArray,
+                   thresholds: Sequence[float]) -> None:
+    for suffix, v in zip(("_sd", "_lo90", "_hi90"), interval_summary(means), strict=True):
+        row["bottom_mean_c" + suffix] = v
+    for j, t in enumerate(thresholds):
+        for suffix, v in zip(("_sd", "_lo90", "_hi90"), interval_summary(areas[:, j]),
+                             strict=True):
+            row[area_column(t) + suffix] = v
+
+
+def _region_rows(yr: int, regions: RegionWeights, est: FloatArray, sd: FloatArray | None,
+                 thresholds: Sequence[float], sims: SimSummaries | None, note: str
+                 ) -> list[dict[str, object]]:
+    """One ``regions.csv`` row per region for a year with indices."""
+    out: list[dict[str, object]] = []
+    for r, name in enumerate(regions.names):
+        w = regions.weights[r]
+        tot = float(w.sum())
+        row: dict[str, object] = {"year": yr, "region": name, "region_km2": tot}
+        if tot <= 0:
+            row["note"] = f"{name} holds no part of the domain"
+            out.append(row)
+            continue
+        row["bottom_mean_c"] = float(np.sum(w * est) / tot)
+        for t in thresholds:
+            row[area_column(t) + "_map"] = area_below(est, None, w, t)
+            row[area_column(t)] = row[area_column(t) + "_map"] if sd is None else area_below(
+                est, sd, w, t)
+        if sims is not None:
+            _put_intervals(row, sims.region_means[:, r], sims.region_areas[:, r, :], thresholds)
+        row["note"] = note
+        out.append(row)
+    return out
+
+
+@dataclass
+class SimSummaries:
+    """Per-realization summaries of one year's conditional simulations.
+
+    Attributes
+    ----------
+    means
+        Domain mean per realization, (n,). [°C]
+    areas
+        Domain area below each threshold per realization, (n, t). [km²]
+    method
+        ``circulant``, ``exact`` or ``circulant+exact``.
+    note
+        A note for the year (empty when nothing to say).
+    clipped
+        Largest clipped share of embedding eigenvalue mass kept.
+    region_means
+        Mean of each region per realization, (n, r); NaN for a region with no
+        area. [°C]
+    region_areas
+        Area of each region below each threshold per realization, (n, r, t);
+        from the same realizations as ``areas``. [km²]
+    """
+
+    means: FloatArray
+    areas: FloatArray
+    method: str
+    note: str
+    clipped: float
+    region_means: FloatArray
+    region_areas: FloatArray
+
+
+def weighted_summaries(values: FloatArray, weights: FloatArray, thresholds: Sequence[float]
+                       ) -> tuple[FloatArray, FloatArray]:
+    """Per-realization weighted means and areas below thresholds.
+
+    Parameters
+    ----------
+    values
+        Realizations at the simulation nodes, (n, k). [°C]
+    weights
+        Area of each node inside each region, (r, k). [km²]
+    thresholds
+        Thresholds. [°C]
+
+    Returns
+    -------
+    tuple
+        Means (n, r) [°C] (NaN for a region without area) and areas (n, r, t). [km²]
+    """
+    w = np.asarray(weights, float)
+    tot = w.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        means = np.where(tot > 0, (values @ w.T) / np.where(tot > 0, tot, 1.0), np.nan)
+    areas = np.stack([(values < t).astype(float) @ w.T for t in thresholds], axis=2)
+    return means, areas
 
 
 def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
                        drift: FloatArray | None, grid: Grid, cell_xy: FloatArray,
                        cell_area: FloatArray, drift_cells: FloatArray | None,
-                       options: IndexOptions, rng: np.random.Generator
-                       ) -> tuple[FloatArray, FloatArray, str, str, float]:
-    """Per-realization domain mean and areas, over draws of the variogram parameters.
+                       options: IndexOptions, rng: np.random.Generator,
+                       region_w: FloatArray | None = None) -> SimSummaries:
+    """Per-realization domain and region means and areas, over variogram parameter draws.
 
     ``options.param_draws`` variograms are drawn from the fit's posterior
     (:func:`coldindex.fitting.draw_variograms`); each gets an equal share of the
     ``options.sims`` realizations, kriged with its own parameters. With no draws
-    (or a ``wls`` fit) every realization uses the point estimate.
+    (or a ``wls`` fit) every realization uses the point estimate. Regions are
+    summarised from the very same realizations as the domain: their cell weights
+    are summed onto the simulation nodes (``node_of_cell``) when the exact
+    fallback simulates on blocks, so regions that cover the domain add up to it
+    realization by realization.
+
+    Parameters
+    ----------
+    region_w
+        Area of each active cell inside each region, (r, m) [km²]; None for none.
 
     Returns
     -------
-    tuple
-        Means (n,) [°C], areas (n, thresholds) [km²], the simulation method
-        (``circulant``, ``exact`` or ``circulant+exact``), a note for the year
-        (empty when nothing to say) and the largest clipped share kept.
+    SimSummaries
+        Domain and region summaries per realization, method, note and clipped share.
     """
     n = options.sims
     k = min(options.param_draws, n)
@@ -418,7 +612,9 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
     counts = np.full(len(draws), n // len(draws))
     counts[: n % len(draws)] += 1
     dist = cdist(cell_xy, xy)
+    rw = np.zeros((0, len(cell_area))) if region_w is None else np.asarray(region_w, float)
     means, areas, methods, coarse = [], [], set(), set()
+    rmeans, rareas = [], []
     clipped = 0.0
     for vg, c in zip(draws, counts, strict=True):
         if c == 0:
@@ -429,6 +625,11 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
         mu, ar = real.summaries(options.thresholds)
         means.append(mu)
         areas.append(ar)
+        rm, ra = weighted_summaries(real.values,
+                                    node_weights(rw, real.node_of_cell, len(real.node_area)),
+                                    options.thresholds)
+        rmeans.append(rm)
+        rareas.append(ra)
         methods.add(real.method)
         if real.method == "exact":
             coarse.add(real.node_km)
@@ -440,4 +641,6 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
         note = ("simulated exactly (long length scale: circulant embedding would clip)"
                 + (f" on {max(coarse):.3g} km blocks" if max(coarse) > grid.cell_km + 1e-9
                    else ""))
-    return np.concatenate(means), np.concatenate(areas), method, note, clipped
+    return SimSummaries(means=np.concatenate(means), areas=np.concatenate(areas),
+                        method=method, note=note, clipped=clipped,
+                        region_means=np.concatenate(rmeans), region_areas=np.concatenate(rareas))

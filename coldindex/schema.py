@@ -150,6 +150,15 @@ QC_FLAGS: dict[str, str] = {
     "outside_domain": "position outside the survey domain",
     "date_outside_year": "the date lies more than a quarter (92 days) outside the labelled "
     "survey year",
+    "spatial_outlier": "the leave-one-out standardized residual from the year's variogram fit "
+    "(noisy variance: smooth part plus nugget) exceeds index.outlier_z in size; the cast is "
+    "kept out of the refit and its z is in the detail",
+    "not_near_bottom": "(profiles) the deepest good sample lies more than profiles.max_gap_m "
+    "above the sea floor; the detail gives the gap",
+    "floor_unknown": "(profiles) no recorded bottom depth and no bathymetry at the cast, so "
+    "the deepest sample cannot be checked against the sea floor",
+    "no_good_sample": "(profiles) no sample of the cast passed the profile checks (missing, "
+    "implausible, non-monotonic pressure, spike)",
 }
 
 _STAT_SUFFIXES = {
@@ -255,6 +264,46 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
         Column("note", "-", "Why a value is blank or how the year was treated.", "str"),
     ]
     return Table("indices.csv", "Output: one row a survey year.", tuple(cols))
+
+
+#: Columns of indices.csv that describe the whole year's casts and fit, not a region.
+_YEAR_ONLY = ("n_casts", "median_doy", "coverage", "cv_rmse_c", "cv_bias_c", "cv_msse",
+              "simulation", "variogram")
+
+
+def regions_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
+    """Layout of ``regions.csv``: every index per year and region or depth zone.
+
+    Parameters
+    ----------
+    thresholds
+        Temperature thresholds. [°C]
+    with_sims
+        Whether the simulation summaries are present.
+
+    Returns
+    -------
+    Table
+        The ordered column layout (long: one row per year and region).
+    """
+    base = indices_table(thresholds, with_sims)
+    cols = [base.get("year"),
+            Column("region", "-", "Region name (from the regions file's name property) or "
+                   "depth zone (`depth <lo>-<hi> m`, cells whose centre depth lies in "
+                   "[lo, hi)).", "str"),
+            Column("region_km2", "km2", "Area of the region inside the domain (edge cells "
+                   "split exactly by area).", "float")]
+    for c in base.columns:
+        if c.name in ("year", "note", *_YEAR_ONLY):
+            continue
+        cols.append(Column(c.name, c.unit, c.meaning.replace("over the domain",
+                                                             "over the region"), c.kind))
+    cols.append(Column("note", "-", "Why a value is blank.", "str"))
+    return Table("regions.csv", "Output: one row per survey year and region or depth zone "
+                 "(`--regions`, `--depth-zones`); the intervals come from the same conditional "
+                 "simulations as the domain's, so regions that cover the domain add up to it "
+                 "in every realization. Year-wide columns (casts, coverage, cross-validation, "
+                 "variogram) are in indices.csv.", tuple(cols))
 
 
 FIELDS_VARIABLES = Table(
@@ -531,7 +580,8 @@ MANIFEST = Table(
     ),
 )
 
-OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), FIELDS_VARIABLES, CLASSES,
+OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), regions_table([2.0, 0.0]),
+                                    FIELDS_VARIABLES, CLASSES,
                                     CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK,
                                     PROJECTION, EMERGENCE, COVARIATES, REVISIONS,
                                     MANIFEST)
