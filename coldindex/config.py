@@ -257,6 +257,98 @@ class ReportConfig:
 
 
 @dataclass(frozen=True)
+class ProfileOptions:
+    """``[profiles]``: profiles to bottom values (see :mod:`coldindex.profiles`).
+
+    Attributes
+    ----------
+    max_gap_m
+        Largest distance between the deepest good sample and the sea floor for the
+        cast to give a bottom value. [m] The default of 10 m keeps a CTD stopped a
+        few metres above the floor (the usual practice, to protect the instrument)
+        and a trawl-mounted logger, and refuses a cast that stopped in the water column.
+    average_m
+        Average the good samples within this distance of the deepest one (0 = the
+        deepest sample alone). [m]
+    min_c, max_c
+        Plausible temperature range. [°C]
+    min_salinity, max_salinity
+        Plausible practical salinity range.
+    max_depth_m
+        Deepest plausible sample. [m]
+    spike_c
+        Spike-test threshold above 500 dbar. [°C]
+    spike_deep_c
+        Spike-test threshold at 500 dbar and deeper. [°C]
+    """
+
+    max_gap_m: float = 10.0
+    average_m: float = 0.0
+    min_c: float = -2.5  # Source: Wong et al. 2020, Argo QC manual v3.3, test 6 (global range)
+    max_c: float = 40.0  # Source: Wong et al. 2020, Argo QC manual v3.3, test 6 (global range)
+    min_salinity: float = 2.0  # Source: Wong et al. 2020, Argo QC manual v3.3, test 6
+    max_salinity: float = 41.0  # Source: Wong et al. 2020, Argo QC manual v3.3, test 6
+    max_depth_m: float = 11000.0  # Common practice, no single source: the deepest ocean
+    spike_c: float = 6.0  # Source: Wong et al. 2020, Argo QC manual v3.3, test 9 (p < 500 dbar)
+    spike_deep_c: float = 2.0  # Source: Wong et al. 2020, Argo QC manual v3.3, test 9
+
+    def __post_init__(self) -> None:
+        _check(0.0 <= self.max_gap_m <= 1000.0, "profiles.max_gap_m", "a distance in 0..1000 m",
+               self.max_gap_m)
+        _check(0.0 <= self.average_m <= 100.0, "profiles.average_m", "a distance in 0..100 m",
+               self.average_m)
+        _check(self.min_c < self.max_c, "profiles.min_c", "below profiles.max_c", self.min_c)
+        _check(self.min_salinity < self.max_salinity, "profiles.min_salinity",
+               "below profiles.max_salinity", self.min_salinity)
+        _check(self.max_depth_m > 0, "profiles.max_depth_m", "a depth > 0 m", self.max_depth_m)
+        _check(self.spike_c > 0 and self.spike_deep_c > 0, "profiles.spike_c",
+               "thresholds > 0 °C (spike_c and spike_deep_c)", (self.spike_c, self.spike_deep_c))
+
+
+ICE_QUANTITIES = ("area_km2", "extent_km2", "volume_km3", "mass_gt")
+
+
+@dataclass(frozen=True)
+class IceFieldsOptions:
+    """``[ice_fields]``: gridded ice to the monthly series (see :mod:`coldindex.icefields`).
+
+    Attributes
+    ----------
+    density_kg_m3
+        Sea-ice density for the mass. [kg m-3] Default 917, the pure-ice density that
+        sea-ice models such as CICE use; measured first-year sea ice lies near 900-920
+        below the waterline.
+    extent_threshold
+        Concentration from which a cell counts toward the extent (fraction). The
+        usual convention is 15 %.
+    thickness
+        How to read ``sea_ice_thickness``: ``auto`` (from its ``cell_methods``:
+        ``area: mean where sea_ice`` is floe thickness, multiplied by concentration;
+        ``area: mean where sea`` is already per cell area), ``floe`` or ``cell``.
+    quantity
+        The series the skill stage reads: one of area_km2, extent_km2, volume_km3, mass_gt.
+    region
+        The region whose series the skill stage reads (empty: the only region).
+    """
+
+    density_kg_m3: float = 917.0  # From memory: CICE's rhoi (Hunke et al., CICE documentation)
+    extent_threshold: float = 0.15  # Common practice, no single source (passive-microwave extent)
+    thickness: str = "auto"
+    quantity: str = "mass_gt"
+    region: str = ""
+
+    def __post_init__(self) -> None:
+        _check(500.0 <= self.density_kg_m3 <= 1000.0, "ice_fields.density_kg_m3",
+               "a density in 500..1000 kg m-3", self.density_kg_m3)
+        _check(0.0 < self.extent_threshold <= 1.0, "ice_fields.extent_threshold",
+               "a concentration fraction in (0, 1] (15 % is 0.15)", self.extent_threshold)
+        _check(self.thickness in ("auto", "floe", "cell"), "ice_fields.thickness",
+               "one of auto, floe, cell", self.thickness)
+        _check(self.quantity in ICE_QUANTITIES, "ice_fields.quantity",
+               f"one of {', '.join(ICE_QUANTITIES)}", self.quantity)
+
+
+@dataclass(frozen=True)
 class Inputs:
     """Input paths (``[inputs]``), resolved relative to the config file."""
 
@@ -267,6 +359,9 @@ class Inputs:
     trajectories: tuple[Path, ...] = ()
     coastline: Path | None = None
     regions: Path | None = None
+    profiles: Path | None = None
+    ice_fields: tuple[Path, ...] = ()
+    ice_regions: Path | None = None
 
 
 @dataclass(frozen=True)
@@ -284,13 +379,17 @@ class Config:
     project: ProjectConfig = field(default_factory=ProjectConfig)
     covariates: CovariatesConfig = field(default_factory=CovariatesConfig)
     report: ReportConfig = field(default_factory=ReportConfig)
+    profile_columns: Mapping[str, str] = field(default_factory=dict)
+    profiles: ProfileOptions = field(default_factory=ProfileOptions)
+    ice_fields: IceFieldsOptions = field(default_factory=IceFieldsOptions)
     source: Path | None = None
 
 
 _STAGE_TABLES: dict[str, type] = {"index": IndexOptions, "classify": ClassifyConfig,
                                    "shifts": ShiftsConfig, "skill": SkillConfig,
                                    "project": ProjectConfig, "covariates": CovariatesConfig,
-                                   "report": ReportConfig}
+                                   "report": ReportConfig, "profiles": ProfileOptions,
+                                   "ice_fields": IceFieldsOptions}
 
 
 def _check(ok: bool, key: str, expected: str, got: object) -> None:
@@ -453,7 +552,8 @@ def load_config(path: Path) -> Config:
 def config_from_mapping(raw: Mapping[str, Any], base: Path, source: Path | None = None
                         ) -> Config:
     """Validate a parsed config mapping; see :func:`load_config`."""
-    known = {"inputs", "columns", "ice_columns", "trajectory_columns", *_STAGE_TABLES}
+    known = {"inputs", "columns", "ice_columns", "trajectory_columns", "profile_columns",
+             *_STAGE_TABLES}
     for key in raw:
         if key not in known:
             raise ConfigError(f"[{key}] is not a known table; allowed tables: "
@@ -466,9 +566,9 @@ def config_from_mapping(raw: Mapping[str, Any], base: Path, source: Path | None 
         if key not in input_keys:
             raise ConfigError(f"inputs.{key} is not a known key; allowed keys: "
                               f"{', '.join(sorted(input_keys))}.")
-        if key == "trajectories":
+        if key in ("trajectories", "ice_fields"):
             items = value if isinstance(value, list) else [value]
-            _check(all(isinstance(v, str) for v in items), "inputs.trajectories",
+            _check(all(isinstance(v, str) for v in items), f"inputs.{key}",
                    "a path or a list of paths", value)
             paths[key] = tuple((base / v) for v in items)
         else:
@@ -484,18 +584,23 @@ def config_from_mapping(raw: Mapping[str, Any], base: Path, source: Path | None 
         ice_columns=_string_map(raw.get("ice_columns", {}), "ice_columns"),
         trajectory_columns=_string_map(raw.get("trajectory_columns", {}),
                                        "trajectory_columns"),
+        profile_columns=_string_map(raw.get("profile_columns", {}), "profile_columns"),
         source=source, **stages,
     )
 
 
 TEMPLATE = """# coldindex configuration: one file drives `coldindex update`.
-# Paths are relative to this file. Every key is optional except inputs.casts.
+# Paths are relative to this file. Every key is optional except inputs.casts (or, instead of
+# it, inputs.profiles).
 
 [inputs]
 casts = "casts.csv"                  # CSV or Parquet: year, lat, lon, bottom_c, ...
 domain = "domain.geojson"            # optional: without it a domain is derived and frozen
 bathymetry = "bathymetry.nc"         # optional: depth as external drift for kriging
 ice = "ice.csv"                      # optional: monthly ice (year, month, ice) for the skill stage
+# profiles = "profiles.nc"           # instead of casts: CTD profiles (CF NetCDF or CSV/Parquet)
+# ice_fields = ["ice_fields.nc"]     # instead of ice: gridded ice concentration (and thickness)
+# ice_regions = "regions.geojson"    # regions of the ice series (default: the domain)
 trajectories = ["trajectories.csv"]  # optional: model trajectories for the projection stage
 
 [columns]
@@ -506,6 +611,20 @@ trajectories = ["trajectories.csv"]  # optional: model trajectories for the proj
 
 [trajectory_columns]
 # model = "GCM", value = "tob"
+
+[profile_columns]
+# cast = "CastID", temperature_c = "TEMP", pressure_dbar = "PRES"
+
+[profiles]
+max_gap_m = 10.0          # deepest good sample at most this far above the sea floor, m
+average_m = 0.0           # average the good samples this far above the deepest (0 = off), m
+
+[ice_fields]
+density_kg_m3 = 917.0     # sea-ice density for the mass
+extent_threshold = 0.15   # concentration from which a cell counts toward the extent
+thickness = "auto"        # auto (from cell_methods), floe or cell
+quantity = "mass_gt"      # series for the skill stage: area_km2, extent_km2, volume_km3, mass_gt
+region = ""               # region of that series (empty: the only region)
 
 [index]
 thresholds = [2.0, 0.0]   # degC

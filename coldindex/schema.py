@@ -117,6 +117,83 @@ TRAJECTORIES = Table(
     ),
 )
 
+PROFILES = Table(
+    "profiles",
+    "Input: profiles as a long table, one sample a row (CSV or Parquet); `--profiles FILE` "
+    "or `inputs.profiles`. Map your headers with `--profile-columns ours=theirs,...`. Give "
+    "`depth_m` or `pressure_dbar` (sea pressure, the atmosphere excluded). CF "
+    "discrete-sampling-geometry NetCDF (`featureType = \"profile\"`) is read too, its "
+    "variables found by `standard_name`.",
+    (
+        Column("cast", "-", "Cast id: every sample of one cast carries the same id.", "str",
+               True),
+        Column("time", "-", "Date or date and time of the cast, ISO 8601.", "str", True),
+        Column("lat", "degrees_north", "Latitude of the cast.", "float", True),
+        Column("lon", "degrees_east", "Longitude of the cast, -180..180 or 0..360.", "float",
+               True),
+        Column("temperature_c", "degC", "In-situ temperature of the sample (ITS-90).", "float",
+               True),
+        Column("depth_m", "m", "Depth of the sample below the surface, positive down.",
+               "float"),
+        Column("pressure_dbar", "dbar", "Sea pressure of the sample (absolute pressure less "
+               "10.1325 dbar); converted to depth with TEOS-10.", "float"),
+        Column("salinity", "1", "Practical salinity (PSS-78) of the sample.", "float"),
+        Column("bottom_depth_m", "m", "Sea-floor depth recorded at the cast (echo sounder), "
+               "positive down; preferred to the bathymetry file.", "float"),
+        Column("station", "-", "Station name of the cast.", "str"),
+        Column("year", "-", "Survey year of the cast (default: the calendar year of time).",
+               "int"),
+    ),
+)
+
+CASTS_FROM_PROFILES = Table(
+    "casts.csv (from profiles)",
+    "Output: one row a cast made from the profiles, the casts table the other commands read, "
+    "with the provenance of each bottom value. `bottom_c` is blank for a cast flagged by the "
+    "profile checks (`profile_flag`).",
+    (
+        Column("row", "-", "Row number (1 = first cast, casts sorted by id).", "int"),
+        *(c for c in (CASTS.get(n) for n in ("year", "station", "date", "lat", "lon")) if c),
+        Column("depth_m", "m", "Sea-floor depth at the cast: recorded, else from the "
+               "bathymetry file (see floor_source).", "float"),
+        Column("bottom_c", "degC", "Bottom temperature: the deepest good sample, or the mean "
+               "of the good samples within profiles.average_m of it.", "float"),
+        Column("salinity", "1", "Practical salinity of the same samples.", "float"),
+        Column("cast", "-", "Cast id in the profiles file.", "str"),
+        Column("time", "-", "Time of the cast, ISO 8601.", "str"),
+        Column("sample", "-", "Position along the profile (0-based, as stored) of the deepest "
+               "good sample.", "int"),
+        Column("sample_depth_m", "m", "Depth of that sample (TEOS-10 from pressure).",
+               "float"),
+        Column("sample_pressure_dbar", "dbar", "Sea pressure of that sample.", "float"),
+        Column("n_averaged", "1", "Samples averaged into bottom_c.", "int"),
+        Column("floor_source", "-", "`recorded`, `bathymetry` or blank (unknown).", "str"),
+        Column("gap_m", "m", "Sea-floor depth minus the deepest good sample's depth.",
+               "float"),
+        Column("deepest_c", "degC", "The value the deepest good samples gave, also when the "
+               "cast is flagged.", "float"),
+        Column("profile_flag", "-", "`ok` or the profile check that refused the cast.", "str"),
+        Column("profile_detail", "-", "What exactly was wrong, with the values.", "str"),
+    ),
+)
+
+ICE_FIELDS = Table(
+    "ice_fields.csv",
+    "Output of `coldindex ice` (and of the update with `inputs.ice_fields`): monthly sea-ice "
+    "quantities per region, tidy. Daily fields are averaged over the month.",
+    (
+        Column("year", "-", "Calendar year.", "int"),
+        Column("month", "-", "Calendar month, 1..12.", "int"),
+        Column("region", "-", "Region name (the GeoJSON feature's `name`).", "str"),
+        Column("quantity", "-", "`area_km2` (sum of concentration x cell area), `extent_km2` "
+               "(area of the cells with concentration >= ice_fields.extent_threshold), "
+               "`volume_km3` (sum of concentration x floe thickness x cell area) or `mass_gt` "
+               "(volume x ice_fields.density_kg_m3); the unit is the name's suffix.", "str"),
+        Column("value", "as named", "Monthly mean of the quantity.", "float"),
+        Column("n_times", "1", "Time steps (days or months) averaged into the value.", "int"),
+    ),
+)
+
 QC = Table(
     "qc.csv",
     "Output: every input row of the casts file with its quality-control flag. Flagged casts "
@@ -584,8 +661,8 @@ OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), regions_table
                                     FIELDS_VARIABLES, CLASSES,
                                     CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK,
                                     PROJECTION, EMERGENCE, COVARIATES, REVISIONS,
-                                    MANIFEST)
-INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES)
+                                    MANIFEST, CASTS_FROM_PROFILES, ICE_FIELDS)
+INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES, PROFILES)
 
 
 def _render_table(table: Table) -> list[str]:
