@@ -229,6 +229,17 @@ def index(
     bathymetry: Annotated[Path | None, typer.Option(
         help="Bathymetry NetCDF used as external drift.")] = None,
     columns: ColumnsOpt = None,
+    regions: Annotated[Path | None, typer.Option(
+        help="GeoJSON of named regions (a name property per feature; no overlaps): every "
+             "index per region in regions.csv, from the same simulations as the domain's.")
+    ] = None,
+    depth_zones: Annotated[str, typer.Option(
+        help="Depth zones in metres from the bathymetry, e.g. 0-50,50-100,100-200: every "
+             "index per zone in regions.csv.")] = "",
+    outlier_z: Annotated[float, typer.Option(
+        help="Spatial-outlier threshold on |z|, the leave-one-out standardized residual "
+             "from the year's fit; flagged casts are kept out of the refit (0 = off).")
+    ] = IndexOptions.outlier_z,
 ) -> None:
     """Map bottom temperature each year and compute cold-water areas with uncertainty."""
     from coldindex.config import ConfigError
@@ -238,7 +249,8 @@ def index(
         opts = IndexOptions(thresholds=_thresholds(thresholds), grid_km=grid_km, sims=sims,
                             seed=seed, min_casts=min_casts, min_coverage=min_coverage,
                             method=method, variogram=variogram, fit=fit,
-                            param_draws=param_draws, per_year_family=per_year_family)
+                            param_draws=param_draws, per_year_family=per_year_family,
+                            outlier_z=outlier_z, depth_zones=depth_zones)
     except ConfigError as exc:
         raise ConfigError(str(exc).replace("index.", "--").replace("_", "-")) from None
     progress = Progress(TextColumn("[bold]Mapping survey years"), BarColumn(),
@@ -249,9 +261,10 @@ def index(
         run = run_index(casts, out, opts, parse_column_map(columns), domain, bathymetry,
                         progress=lambda yr: progress.update(task, advance=1,
                                                             description=str(yr)),
-                        on_start=lambda n: progress.update(task, total=n))
+                        on_start=lambda n: progress.update(task, total=n),
+                        regions_path=regions)
     res = run.result
-    flagged = int((run.check.qc.table["flag"] != "ok").sum())
+    flagged = int((run.check.qc.table["flag"] != "ok").sum()) + len(res.outliers)
     out_console.print(f"{len(res.years)} years, {len(run.check.qc.casts)} casts used, "
                       f"{flagged} flagged (see qc.csv). Domain: {run.check.domain_source}.")
     if res.family_scores:
@@ -265,6 +278,10 @@ def index(
     skipped = res.table[res.table["note"].fillna("").str.startswith("no indices")]
     for _, r in skipped.iterrows():
         out_console.print(f"{int(r['year'])}: {r['note']}.")
+    for _, r in res.outliers.iterrows():
+        out_console.print(f"{int(r['year'])}: spatial outlier at station {r['station']} "
+                          f"(row {int(r['row'])}, z = {r['z']:+.2f}), kept out of the fit.",
+                          markup=False)
     for p in run.written:
         out_console.print(f"Wrote {p}")
 

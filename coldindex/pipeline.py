@@ -23,7 +23,7 @@ import pandas as pd
 from coldindex._version import __version__
 from coldindex.classify import reference_values
 from coldindex.config import Config, IndexOptions, ShiftsConfig
-from coldindex.domain import Domain, Grid, derive_domain, make_grid
+from coldindex.domain import Domain, Grid, derive_domain, make_grid, sample_lonlat_grid
 from coldindex.errors import (
     BusyError,
     ColdindexError,
@@ -39,9 +39,11 @@ from coldindex.io import readers, writers
 from coldindex.project import ProjectionResult
 from coldindex.qc import QCResult, run_qc, year_hashes
 from coldindex.regimes import ShiftResult
+from coldindex.regions import RegionWeights
 
 FROZEN_NAME = "frozen.json"
 DOMAIN_NAME = "domain.geojson"
+REGIONS_NAME = "regions.csv"
 
 
 @dataclass
@@ -117,6 +119,49 @@ def _check_memory(casts: pd.DataFrame, grid: Grid, options: IndexOptions) -> Non
             "the casts of that year.")
 
 
+def region_weights_for(domain: Domain, grid: Grid, options: IndexOptions,
+                       bathy: tuple[np.ndarray, np.ndarray, np.ndarray] | None,
+                       regions_path: Path | None, zones_option: str = "--depth-zones"
+                       ) -> tuple[RegionWeights | None, list[str]]:
+    """Regions (``--regions``) and depth zones (``--depth-zones``) as cell weights, with notes.
+
+    The notes report the domain area outside every region and outside every zone.
+    """
+    from coldindex import regions as rg
+
+    parts: list[rg.RegionWeights] = []
+    notes: list[str] = []
+    if regions_path is not None:
+        parts.append(rg.region_weights(grid, domain, readers.read_regions(regions_path, domain)))
+    zones = rg.parse_depth_zones(options.depth_zones, zones_option)
+    if zones:
+        if bathy is None:
+            raise InputError(f"{zones_option} needs the bathymetry (--bathymetry or "
+                             "inputs.bathymetry) to place the cells in depth zones.")
+        depth = np.abs(sample_lonlat_grid(*bathy, grid.lon[grid.mask], grid.lat[grid.mask]))
+        parts.append(rg.depth_zone_weights(depth, grid.active_area(), zones))
+    total = float(grid.active_area().sum())
+    for p in parts:
+        if p.outside_km2 > 1e-6 * total:
+            notes.append(f"{p.outside_km2:.0f} km² of the domain ({p.outside_km2 / total:.1%}) "
+                         f"lies outside every {p.kind}")
+    return rg.combine(parts), notes
+
+
+def mark_spatial_outliers(table: pd.DataFrame, outliers: pd.DataFrame,
+                          z_max: float) -> pd.DataFrame:
+    """The QC table with the spatial outliers' flag and z in ``detail``."""
+    if outliers.empty:
+        return table
+    t = table.copy()
+    z = dict(zip(outliers["row"], outliers["z"], strict=True))
+    hit = t["row"].isin(z)
+    t.loc[hit, "flag"] = "spatial_outlier"
+    t.loc[hit, "detail"] = [f"leave-one-out z = {z[r]:+.2f} (|z| > {z_max:g}); kept out of "
+                            "the variogram fit and the map" for r in t.loc[hit, "row"]]
+    return t
+
+
 def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: Grid,
                          options: IndexOptions) -> tuple[list[Path], dict]:
     """Write qc.csv, indices.csv, fields.nc, domain.geojson and frozen.json into ``out``.
@@ -136,7 +181,8 @@ def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: 
               "reference_spacing_km": (round(result.reference_spacing_km, 6)
                                        if np.isfinite(result.reference_spacing_km) else None)}
     written = [
-        writers.write_csv(check.qc.table.drop(columns=["doy"]).reindex(
+        writers.write_csv(mark_spatial_outliers(check.qc.table, result.outliers,
+                                                options.outlier_z).drop(columns=["doy"]).reindex(
             columns=["row", "year", "station", "lat", "lon", "bottom_c", "flag", "detail"]),
             out / "qc.csv"),
         writers.write_csv(result.table, out / "indices.csv"),
@@ -144,6 +190,8 @@ def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: 
         writers.write_json(check.domain.to_geojson(), out / DOMAIN_NAME),
         writers.write_json(frozen, out / FROZEN_NAME),
     ]
+    if result.regions is not None:
+        written.append(writers.write_csv(result.regions, out / REGIONS_NAME))
     return written, frozen
 
 
@@ -201,6 +249,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
               mapping: Mapping[str, str] | None = None, domain_path: Path | None = None,
               bathymetry_path: Path | None = None,
               progress: Callable[[int], None] | None = None,
+              regions_path: Path | None = None,
               on_start: Callable[[int], None] | None = None) -> IndexRun:
     """Compute the indices and write ``indices.csv``, ``fields.nc`` and companions.
 
@@ -250,14 +299,23 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
     if frozen and frozen_spacing is None:
         notes.append(f"{out / FROZEN_NAME} has no reference station spacing (made by an older "
                      "version); it is computed once from these casts and frozen from now on")
+    regions, region_notes = region_weights_for(check.domain, grid, options, bathy,
+                                               regions_path)
+    notes += region_notes
     result = compute_indices(check.qc.casts, check.domain, grid, options, bathy,
                              frozen_family=frozen_family, progress=progress,
-                             frozen_spacing_km=frozen_spacing)
+                             frozen_spacing_km=frozen_spacing, regions=regions)
 
     inputs = {"casts": {"path": str(casts_path), "sha256": writers.sha256_file(casts_path)}}
-    for name, p in (("domain", domain_path), ("bathymetry", bathymetry_path)):
+    for name, p in (("domain", domain_path), ("bathymetry", bathymetry_path),
+                    ("regions", regions_path)):
         if p is not None:
             inputs[name] = {"path": str(p), "sha256": writers.sha256_file(p)}
+    if regions is not None:  # an extra output, checked like the declared ones
+        writers.refuse_overwriting_inputs(writers.output_targets(out, [REGIONS_NAME]),
+                                          [casts_path, domain_path, bathymetry_path,
+                                           regions_path], "--out")
+        outputs.names.append(REGIONS_NAME)
     with outputs as stage:
         written, frozen_out = _write_index_outputs(stage.dir, check, result, grid, options)
         provenance = {
@@ -535,6 +593,51 @@ def covariates_table(indices: pd.DataFrame, columns: tuple[str, ...], lags: tupl
     return out
 
 
+def region_slug(name: str) -> str:
+    """A region or zone name as a column prefix (``east south`` -> ``east_south``)."""
+    slug = re.sub(r"[^0-9a-z]+", "_", name.lower()).strip("_")
+    return slug if slug and not slug[0].isdigit() else f"r_{slug}"
+
+
+def with_region_columns(indices: pd.DataFrame, regions: pd.DataFrame | None,
+                        columns: tuple[str, ...]) -> tuple[pd.DataFrame, tuple[str, ...]]:
+    """Indices widened by each region's copy of the covariate columns, and their names.
+
+    Region ``east south``'s ``bottom_mean_c`` becomes ``east_south_bottom_mean_c`` (with
+    its ``_sd``/``_lo90``/``_hi90``), so the assessor picks a region's covariates by name.
+    """
+    if regions is None or regions.empty:
+        return indices, columns
+    slugs = {n: region_slug(n) for n in regions["region"].unique()}
+    if len(set(slugs.values())) < len(slugs):
+        raise InputError("Two region names give the same column prefix in covariates.csv "
+                         f"({', '.join(sorted(slugs))}); rename one of them.")
+    wide = indices.set_index("year")
+    names = list(columns)
+    for name, slug in slugs.items():
+        g = regions[regions["region"] == name].set_index("year")
+        for col in columns:
+            for s in ("", "_sd", "_lo90", "_hi90"):
+                if col + s in g.columns:
+                    wide[f"{slug}_{col}{s}"] = g[col + s].reindex(wide.index).to_numpy(float)
+            if col in g.columns:
+                names.append(f"{slug}_{col}")
+    return wide.reset_index(), tuple(names)
+
+
+def with_class_probabilities(cov: pd.DataFrame, classes: pd.DataFrame) -> pd.DataFrame:
+    """Covariates with each classified column's class probabilities (``<col>_p_cold``, ...)."""
+    if classes.empty or "p_cold" not in classes.columns:
+        return cov
+    out = cov.set_index("year")
+    for col, g in classes.groupby("column", sort=False):
+        g = g.set_index("year")
+        for p in ("p_cold", "p_average", "p_warm"):
+            if g[p].notna().any():
+                out[f"{col}_{p}"] = g[p].reindex(out.index).to_numpy(float)
+    return out.reset_index()
+
+
 def revisions_table(current: pd.DataFrame, previous: pd.DataFrame | None, cur_prov: dict,
                     prev_prov: dict | None, tolerance: float) -> pd.DataFrame:
     """Every past value that changed beyond ``tolerance`` (relative), with its likely cause."""
@@ -784,8 +887,11 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
         notes.append("the previous release has no reference station spacing (an older "
                      "version); coverage now uses one computed from these casts, frozen from "
                      "now on")
+    regions, region_notes = region_weights_for(check.domain, grid, opts, bathy,
+                                               cfg.inputs.regions, "index.depth_zones")
+    notes += region_notes
     res = compute_indices(check.qc.casts, check.domain, grid, opts, bathy, frozen_family=family,
-                          frozen_spacing_km=frozen_spacing)
+                          frozen_spacing_km=frozen_spacing, regions=regions)
     indices = res.table
     index_files, frozen = _write_index_outputs(rel, check, res, grid, opts)
     written += index_files
@@ -870,8 +976,10 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
         written.append(writers.write_csv(proj.emergence, rel / "emergence.csv"))
 
     _stage(progress, "covariates")
-    cov = covariates_table(indices, cfg.covariates.columns, cfg.covariates.lags,
+    cov_source, cov_columns = with_region_columns(indices, res.regions, cfg.covariates.columns)
+    cov = covariates_table(cov_source, cov_columns, cfg.covariates.lags,
                            cl.parse_reference(cfg.covariates.reference or None))
+    cov = with_class_probabilities(cov, classes)
     written.append(writers.write_csv(cov, rel / "covariates.csv"))
 
     _stage(progress, "revisions")
@@ -882,6 +990,8 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
             inputs[name] = writers.sha256_file(p)
     for k, p in enumerate(cfg.inputs.trajectories):
         inputs[f"trajectories[{k}]"] = writers.sha256_file(p)
+    if cfg.inputs.regions is not None:
+        inputs["regions"] = writers.sha256_file(cfg.inputs.regions)
     prov: dict = {"tool": "coldindex", "version": __version__, "release_format": RELEASE_FORMAT,
                   "config": _config_dict(cfg), "parameters": asdict(opts),
                   "inputs_sha256": inputs,

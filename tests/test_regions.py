@@ -188,3 +188,61 @@ def test_no_outlier_in_a_clean_survey(box_domain):
     res = compute_indices(qc_casts(df), box_domain, make_grid(box_domain, 10.0), opts)
     assert res.outliers.empty
     assert isinstance(res.outliers, pd.DataFrame)
+
+
+def test_index_cli_writes_regions_and_marks_outliers(tmp_path):
+    import json
+
+    import xarray as xr
+    from typer.testing import CliRunner
+
+    from coldindex.cli import app
+
+    df = synthetic_casts(years=(2001, 2002), n_side=9)
+    df.loc[40, "bottom_c"] += 3.0  # an interior cast of 2001, far off the smooth field
+    casts = tmp_path / "casts.csv"
+    df.to_csv(casts, index=False)
+    regions = tmp_path / "regions.geojson"
+    regions.write_text(json.dumps(_collection(WEST, EAST_S, EAST_N)))
+    lon = np.linspace(178.0, 182.0, 41)  # 0..360 axis across 180 deg
+    lat = np.linspace(59.5, 62.5, 31)
+    depth = np.repeat((20.0 + 100.0 * (lat - 60.0))[:, None], len(lon), axis=1)
+    xr.Dataset({"depth": (("lat", "lon"), depth)},
+               coords={"lat": lat, "lon": lon}).to_netcdf(tmp_path / "bathy.nc")
+    out = tmp_path / "out"
+    result = CliRunner().invoke(app, [
+        "index", str(casts), "--out", str(out), "--grid-km", "10", "--sims", "20",
+        "--min-casts", "20", "--thresholds", "0", "--regions", str(regions),
+        "--depth-zones", "0-100,100-150", "--bathymetry", str(tmp_path / "bathy.nc")])
+    assert result.exit_code == 0, result.output
+    assert "spatial outlier at station S44" in result.output
+    # Zones 0-150 m leave the deepest cells (150-220 m) outside: reported.
+    assert "lies outside every depth zone" in result.output
+    reg = pd.read_csv(out / "regions.csv")
+    assert list(reg.columns[:3]) == ["year", "region", "region_km2"]
+    assert len(reg) == 2 * 5 and "below_0c_km2_lo90" in reg
+    qc = pd.read_csv(out / "qc.csv")
+    hit = qc[qc["flag"] == "spatial_outlier"]
+    assert hit["row"].tolist() == [41] and "z = +" in hit["detail"].iloc[0]
+    prov = json.loads((out / "provenance.json").read_text())
+    assert "regions" in prov["inputs"] and "regions.csv" in prov["outputs"]
+
+
+def test_index_cli_refuses_overlapping_regions_and_zones_without_depth(tmp_path):
+    import json
+
+    from typer.testing import CliRunner
+
+    from coldindex.cli import app
+
+    casts = tmp_path / "casts.csv"
+    synthetic_casts(years=(2001,), n_side=9).to_csv(casts, index=False)
+    regions = tmp_path / "regions.geojson"
+    regions.write_text(json.dumps(_collection(WEST, {**WEST, "properties": {"name": "w2"}})))
+    base = ["index", str(casts), "--out", str(tmp_path / "out"), "--grid-km", "10",
+            "--sims", "0", "--min-casts", "20"]
+    r = CliRunner().invoke(app, [*base, "--regions", str(regions)])
+    assert r.exit_code != 0 and "overlap" in r.output
+    r = CliRunner().invoke(app, [*base, "--depth-zones", "0-50"])
+    assert r.exit_code != 0 and "--depth-zones needs the bathymetry" in r.output
+    assert not (tmp_path / "out" / "indices.csv").exists()

@@ -325,6 +325,22 @@ def read_domain(path: Path) -> Domain:
                          "a hemisphere.") from None
 
 
+def read_regions(path: Path, domain: Domain) -> list:
+    """Read named regions from GeoJSON into the domain's plane (:mod:`coldindex.regions`)."""
+    from coldindex.regions import regions_from_geojson
+
+    _check_file(path)
+    try:
+        obj = json.loads(_read_bytes(path).decode("utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path} is not valid GeoJSON ({exc}); give a FeatureCollection of "
+                         "named polygons (--regions).") from None
+    except RecursionError:
+        raise InputError(f"{path} is nested too deeply to be GeoJSON regions (--regions).") \
+            from None
+    return regions_from_geojson(obj, domain, source=str(path))
+
+
 def read_bathymetry(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Read a bathymetry grid on 1-D lon/lat axes.
 
