@@ -22,7 +22,7 @@ import pandas as pd
 
 from coldindex._version import __version__
 from coldindex.classify import reference_values
-from coldindex.config import Config, IndexOptions, ShiftsConfig
+from coldindex.config import Config, IndexOptions, ProfileOptions, ShiftsConfig
 from coldindex.domain import Domain, Grid, derive_domain, make_grid, sample_lonlat_grid
 from coldindex.errors import (
     BusyError,
@@ -44,6 +44,7 @@ from coldindex.regions import RegionWeights
 FROZEN_NAME = "frozen.json"
 DOMAIN_NAME = "domain.geojson"
 REGIONS_NAME = "regions.csv"
+PROFILE_CASTS_NAME = "casts.csv"  # the casts made from profiles
 
 
 @dataclass
@@ -53,6 +54,7 @@ class CheckRun:
     qc: QCResult
     domain: Domain | None
     domain_source: str
+    profile_casts: pd.DataFrame | None = None  # the casts made from profiles (--profiles)
 
 
 @dataclass
@@ -190,6 +192,8 @@ def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: 
         writers.write_json(check.domain.to_geojson(), out / DOMAIN_NAME),
         writers.write_json(frozen, out / FROZEN_NAME),
     ]
+    if check.profile_casts is not None:  # the casts made from profiles, with provenance
+        written.append(writers.write_csv(check.profile_casts, out / PROFILE_CASTS_NAME))
     if result.regions is not None:
         written.append(writers.write_csv(result.regions, out / REGIONS_NAME))
     return written, frozen
@@ -197,7 +201,9 @@ def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: 
 
 def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
               domain_path: Path | None = None, options: IndexOptions | None = None,
-              previous_out: Path | None = None, derive: bool = False) -> CheckRun:
+              previous_out: Path | None = None, derive: bool = False, *,
+              profiles: ProfileOptions | None = None,
+              bathymetry_path: Path | None = None) -> CheckRun:
     """Read casts, pick the domain (given, frozen, derived or none) and run QC.
 
     Parameters
@@ -215,6 +221,11 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
         Output folder of an earlier run, whose frozen domain is reused.
     derive
         Derive a domain from the stations when none is given or frozen.
+    profiles
+        Given: ``casts_path`` is a profiles file (``mapping`` maps its headers), turned
+        into casts by :func:`coldindex.sources.profile_casts` with these settings.
+    bathymetry_path
+        Sea-floor depth for profiles without a recorded bottom depth.
 
     Returns
     -------
@@ -222,7 +233,13 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
         QC result and the domain used.
     """
     opts = options or IndexOptions()
-    raw = readers.read_casts(casts_path, mapping)
+    profile_table = None
+    if profiles is not None:
+        from coldindex.sources import profile_casts
+
+        raw = profile_table = profile_casts(casts_path, mapping, profiles, opts, bathymetry_path)
+    else:
+        raw = readers.read_casts(casts_path, mapping)
     domain: Domain | None = None
     source = "none"
     if domain_path is not None:
@@ -242,7 +259,11 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
         domain = derive_domain(c["lon"], c["lat"], c["year"], c["station"])
         source = "derived from the stations sampled in at least half of the years"
     qc = run_qc(raw, domain, **qc_kwargs)  # type: ignore[arg-type]
-    return CheckRun(qc=qc, domain=domain, domain_source=source)
+    if profile_table is not None:
+        from coldindex.profiles import apply_profile_flags
+
+        qc = apply_profile_flags(qc, profile_table)
+    return CheckRun(qc=qc, domain=domain, domain_source=source, profile_casts=profile_table)
 
 
 def run_index(casts_path: Path, out: Path, options: IndexOptions,
@@ -250,7 +271,8 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
               bathymetry_path: Path | None = None,
               progress: Callable[[int], None] | None = None,
               regions_path: Path | None = None,
-              on_start: Callable[[int], None] | None = None) -> IndexRun:
+              on_start: Callable[[int], None] | None = None,
+              profiles: ProfileOptions | None = None) -> IndexRun:
     """Compute the indices and write ``indices.csv``, ``fields.nc`` and companions.
 
     Every result is computed before the first file is written; the outputs are
@@ -272,16 +294,21 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
         Called with each year when done.
     on_start
         Called once with the number of years before the first one starts.
+    profiles
+        Given: ``casts_path`` is a profiles file; ``casts.csv`` (the casts made from
+        it) is written too.
 
     Returns
     -------
     IndexRun
         Results, notes and the files written.
     """
-    outputs = writers.plan_outputs(out, "index", INDEX_OUTPUTS,
-                                   [casts_path, domain_path, bathymetry_path])
+    outputs = writers.plan_outputs(
+        out, "index", INDEX_OUTPUTS + ((PROFILE_CASTS_NAME,) if profiles else ()),
+        [casts_path, domain_path, bathymetry_path])
     frozen = _frozen(out)
-    check = run_check(casts_path, mapping, domain_path, options, previous_out=out, derive=True)
+    check = run_check(casts_path, mapping, domain_path, options, previous_out=out, derive=True,
+                      profiles=profiles, bathymetry_path=bathymetry_path)
     assert check.domain is not None
     if check.qc.casts.empty:
         raise InputError(f"{casts_path} has no usable casts; run coldindex check to see why.")
@@ -306,7 +333,8 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
                              frozen_family=frozen_family, progress=progress,
                              frozen_spacing_km=frozen_spacing, regions=regions)
 
-    inputs = {"casts": {"path": str(casts_path), "sha256": writers.sha256_file(casts_path)}}
+    inputs = {"profiles" if profiles else "casts": {"path": str(casts_path),
+                                                    "sha256": writers.sha256_file(casts_path)}}
     for name, p in (("domain", domain_path), ("bathymetry", bathymetry_path),
                     ("regions", regions_path)):
         if p is not None:
@@ -542,11 +570,17 @@ def _same_input_twice(files: dict[str, Path | None]) -> None:
 
 
 def _check_paths(cfg: Config, out: Path) -> None:
-    if cfg.inputs.casts is None:
-        raise ConfigError("inputs.casts needs to be set: the path of the casts file.")
+    if (cfg.inputs.casts is None) == (cfg.inputs.profiles is None):
+        raise ConfigError("inputs.casts or inputs.profiles needs to be set (one of them, not "
+                          "both): the path of the casts file or of the profiles file.")
+    if cfg.inputs.ice is not None and cfg.inputs.ice_fields:
+        raise ConfigError("inputs.ice and inputs.ice_fields are both set; give the monthly ice "
+                          "file or the gridded ice fields, not both.")
     files = {"inputs.casts": cfg.inputs.casts, "inputs.domain": cfg.inputs.domain,
              "inputs.bathymetry": cfg.inputs.bathymetry, "inputs.ice": cfg.inputs.ice,
-             **{f"inputs.trajectories[{k}]": p for k, p in enumerate(cfg.inputs.trajectories)}}
+             **{f"inputs.trajectories[{k}]": p for k, p in enumerate(cfg.inputs.trajectories)},
+             "inputs.profiles": cfg.inputs.profiles, "inputs.ice_regions": cfg.inputs.ice_regions,
+             **{f"inputs.ice_fields[{k}]": p for k, p in enumerate(cfg.inputs.ice_fields)}}
     for key, p in files.items():
         if p is not None and not p.is_file():
             raise ConfigError(f"{key} names {p}, which does not exist or is not a file; fix the "
@@ -860,18 +894,22 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     from coldindex.regimes import ShiftOptions, detect_shifts
     from coldindex.report import figures as fg
 
-    assert cfg.inputs.casts is not None
+    casts_path = cfg.inputs.casts or cfg.inputs.profiles
+    assert casts_path is not None
     notes: list[str] = []
     headlines: list[str] = []
     written: list[Path] = []
     opts = cfg.index
 
     _stage(progress, "check")
-    check = run_check(cfg.inputs.casts, cfg.columns, cfg.inputs.domain, opts,
-                      previous_out=prev, derive=True)
+    from_profiles = cfg.inputs.profiles is not None
+    check = run_check(casts_path, cfg.profile_columns if from_profiles else cfg.columns,
+                      cfg.inputs.domain, opts, previous_out=prev, derive=True,
+                      profiles=cfg.profiles if from_profiles else None,
+                      bathymetry_path=cfg.inputs.bathymetry)
     assert check.domain is not None
     if check.qc.casts.empty:
-        raise InputError(f"{cfg.inputs.casts} has no usable casts; run coldindex check.")
+        raise InputError(f"{casts_path} has no usable casts; run coldindex check.")
 
     _stage(progress, "index")
     frozen_prev = _frozen(prev)
@@ -939,9 +977,17 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
 
     _stage(progress, "skill")
     ol = skill_tab = hc = None
-    if cfg.inputs.ice is not None:
+    if cfg.inputs.ice is not None or cfg.inputs.ice_fields:
         kc = cfg.skill
-        ice = sk.ice_frame(readers.read_ice(cfg.inputs.ice, cfg.ice_columns), str(cfg.inputs.ice))
+        if cfg.inputs.ice_fields:  # gridded fields -> ice_fields.csv -> the chosen series
+            from coldindex.sources import release_ice_series
+
+            ice, ice_written = release_ice_series(cfg, check.domain, rel)
+            written += ice_written
+        else:
+            assert cfg.inputs.ice is not None
+            ice = sk.ice_frame(readers.read_ice(cfg.inputs.ice, cfg.ice_columns),
+                               str(cfg.inputs.ice))
         preds = sk.winter_predictors(ice, sk.parse_months(kc.months), kc.winter,
                                      survey=sk.survey_month(kc.survey_month,
                                                             indices["median_doy"]))
@@ -983,8 +1029,8 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     written.append(writers.write_csv(cov, rel / "covariates.csv"))
 
     _stage(progress, "revisions")
-    inputs = {"casts": writers.sha256_file(cfg.inputs.casts)}
-    for name in ("domain", "bathymetry", "ice"):
+    inputs = {"profiles" if from_profiles else "casts": writers.sha256_file(casts_path)}
+    for name in ("domain", "bathymetry", "ice", "ice_regions"):
         p = getattr(cfg.inputs, name)
         if p is not None:
             inputs[name] = writers.sha256_file(p)
@@ -992,6 +1038,8 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
         inputs[f"trajectories[{k}]"] = writers.sha256_file(p)
     if cfg.inputs.regions is not None:
         inputs["regions"] = writers.sha256_file(cfg.inputs.regions)
+    for k, p in enumerate(cfg.inputs.ice_fields):
+        inputs[f"ice_fields[{k}]"] = writers.sha256_file(p)
     prov: dict = {"tool": "coldindex", "version": __version__, "release_format": RELEASE_FORMAT,
                   "config": _config_dict(cfg), "parameters": asdict(opts),
                   "inputs_sha256": inputs,
