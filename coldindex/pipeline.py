@@ -1066,27 +1066,49 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     written.append(writers.write_csv(revisions, rel / "revisions.csv"))
 
     _stage(progress, "figures")
+    from coldindex.report.page import column_label
+
     figs = {}
-    pairs = [("bottom_mean_c", "mean bottom temperature (°C)")]
+    ref_years = cl.parse_reference(cfg.classify.reference or None)
+    pairs = [("bottom_mean_c", column_label("bottom_mean_c"))]
     area_col = next((c for c in cfg.classify.columns if c.startswith("below_")), None)
     if area_col:
-        pairs.append((area_col, f"{area_col} (km²)"))
-    figs["series"] = fg.series_figure(indices, pairs, classes, shifts.regimes)
+        pairs.append((area_col, column_label(area_col)))
+    figs["series"] = fg.series_figure(indices, pairs, classes, shifts.regimes,
+                                      reference=ref_years)
     ok_years = [y for y, note in zip(res.years, indices["note"].fillna(""), strict=True)
-                if not str(note).startswith("no indices")][-cfg.report.map_years:]
+                if not str(note).startswith("no indices")]
     idx = [res.years.index(y) for y in ok_years]
     outline = [np.asarray(r.coords) for p in getattr(check.domain.polygon_xy, "geoms",
                                                       [check.domain.polygon_xy])
                for r in [p.exterior]]
     cast_xy = [res.casts.loc[res.casts["year"] == y, ["x_km", "y_km"]].to_numpy()
                for y in ok_years]
-    figs["maps"] = fg.maps_figure(ok_years, grid.to_2d(res.estimate[idx]), grid.x, grid.y,
-                                  outline, cast_xy)
+    coast = (readers.read_coastline(cfg.inputs.coastline, check.domain)
+             if cfg.inputs.coastline else None)
+    contour = opts.thresholds[0]
+    maps = grid.to_2d(res.estimate[idx])
+    figs["maps"] = fg.maps_figure(ok_years, maps, grid.x, grid.y, outline, cast_xy, contour,
+                                  lon=grid.lon, lat=grid.lat, coastline=coast)
+    in_ref = [k for k, y in enumerate(ok_years)
+              if ref_years is None or ref_years[0] <= y <= ref_years[1]]
+    if len(in_ref) > 1:
+        last = list(range(len(ok_years)))[-cfg.report.map_years:]
+        stack = maps[in_ref]
+        count = np.isfinite(stack).sum(axis=0)
+        ref_map = np.where(count > 0, np.nansum(stack, axis=0) / np.maximum(count, 1), np.nan)
+        anomalies = maps[last] - ref_map
+        figs["anomalies"] = fg.maps_figure(
+            [ok_years[k] for k in last], anomalies, grid.x, grid.y, outline,
+            [cast_xy[k] for k in last], None, lon=grid.lon, lat=grid.lat, coastline=coast,
+            label="bottom temperature minus the reference mean map (°C)", anomaly=True)
     if skill_tab is not None and hc is not None and ol is not None:
         figs["skill"] = fg.skill_figure(skill_tab)
         figs["hindcast"] = fg.hindcast_figure(hc.table, ol, cfg.skill.column)
     if proj is not None:
         figs["projection"] = fg.projection_figure(proj.projection, proj.emergence)
+        figs["stop_years"] = fg.stop_year_figure(proj.emergence,
+                                                 int(proj.projection["year"].max()))
     pngs: dict[str, bytes] = {}
     for name, fig in figs.items():
         written.append(writers.write_figure(fig, rel / "figures" / f"{name}.svg", close=False))
@@ -1097,7 +1119,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     headlines = _headlines(indices, classes, cuts, shifts.shifts, sc, ol, proj, revisions,
                            cfg)
     page = _report_page(cfg, indices, classes, shifts, skill_tab, proj, revisions, check,
-                        pngs, headlines, prov)
+                        pngs, headlines, prov, res=res, cuts=cuts, release=rel)
     written.append(writers.write_bytes(page.encode("utf-8"), rel / "report.html"))
     prov["outputs_sha256"] = {str(p.relative_to(rel)): writers.sha256_file(p)
                               for p in sorted(written)}
@@ -1110,6 +1132,8 @@ def _headlines(indices: pd.DataFrame, classes: pd.DataFrame, cuts: dict, shifts:
                sc: ShiftsConfig, ol: dict | None, proj: ProjectionResult | None,
                revisions: pd.DataFrame, cfg: Config) -> list[str]:
     """Sentences generated from the numbers, for the terminal and the report."""
+    from coldindex.report.page import column_label
+
     out = []
     main = cfg.classify.columns[0]
     valid = indices.dropna(subset=[main])
@@ -1122,7 +1146,8 @@ def _headlines(indices: pd.DataFrame, classes: pd.DataFrame, cuts: dict, shifts:
         rank = int(ranked.iloc[-1])
         unit = "°C" if main.endswith("_c") else "km²"
         text = (f"{yr} was a{'n' if str(cls.iloc[0]).startswith('a') else ''} "
-                f"{cls.iloc[0]} year by {main} ({last[main]:.3g} {unit}; the "
+                f"{cls.iloc[0]} year by {column_label(main).rsplit(' (', 1)[0]} "
+                f"({last[main]:.3g} {unit}; the "
                 f"{_ordinal(rank)} coldest of {len(valid)} years)")
         if len(valid) > 1:
             prev = valid.iloc[-2]
@@ -1166,50 +1191,124 @@ def _report_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame,
                  shifts: ShiftResult, skill_tab: pd.DataFrame | None,
                  proj: ProjectionResult | None,
                  revisions: pd.DataFrame, check: CheckRun, pngs: dict[str, bytes],
-                 headlines: list[str], prov: dict) -> str:
-    from coldindex.report.html import escape, render, table_html
+                 headlines: list[str], prov: dict, *, res: IndexResult | None = None,
+                 cuts: Mapping[str, object] | None = None, release: Path | None = None) -> str:
+    from coldindex.report import page as pg
+    from coldindex.report.html import escape
 
-    t = table_html
-    cols = ["year", "n_casts", "coverage", "bottom_mean_c",
+    th = cfg.index.thresholds
+    tt = pg.threshold_text(th)
+    ok = indices.dropna(subset=["bottom_mean_c"])
+    last_year = int(ok["year"].max()) if len(ok) else None
+    number = None
+    if release is not None:
+        m = re.match(r"\.?release-(\d+)", release.name)
+        number = int(m.group(1)) if m else None
+    date = (pg.median_date(check.qc.casts, last_year) if last_year is not None else None)
+    subtitle = pg.subtitle_text(number, last_year, date)
+    title = cfg.report.title + (f", {last_year} survey" if last_year is not None else "")
+    cols = ["year", "n_casts", "median_doy", "coverage", "bottom_mean_c",
             *[c for c in indices.columns if c.startswith("below_") and c.count("_") == 2],
             "cv_rmse_c", "note"]
+    series_cols = ", ".join(pg.column_label(c) for c in
+                            ["bottom_mean_c", *[c for c in cfg.classify.columns
+                                                if c.startswith("below_")][:1]])
+    S = pg.Section
+    sections = [S("indices", "Indices", pg.indices_paragraphs(indices, th),
+                  pg.figure_html(pngs.get("series"), "index series",
+                                 f"Series of {series_cols}: black line and markers, year "
+                                 "classes by marker (cold ▼, average ●, warm ▲), 90 % "
+                                 "interval shaded blue, reference mean ± 1 SD in grey, "
+                                 "latest year ringed.")
+                  + pg.details_table(indices[[c for c in cols if c in indices]],
+                                     "survey years"))]
+    if res is not None and res.regions is not None:
+        reg = res.regions
+        reg_cols = ["year", "region", "region_km2", "bottom_mean_c",
+                    *[c for c in reg.columns if c.startswith("below_") and c.count("_") == 2],
+                    "note"]
+        shown = reg[reg["year"] == reg["year"].max()] if len(reg) else reg
+        sections.append(S("regions", "Regions and depth zones",
+                          pg.regions_paragraphs(reg, th),
+                          pg.details_table(shown[[c for c in reg_cols if c in reg]],
+                                           "regions", shown=len(shown))
+                          + "<details><summary>Every year and region</summary>"
+                          + pg.details_table(reg[[c for c in reg_cols if c in reg]],
+                                             "rows", shown=len(reg))
+                          + "</details>"))
+    maps_body = pg.figure_html(pngs.get("maps"), "bottom-temperature maps",
+                               "Kriged bottom temperature of every survey year with indices "
+                               f"(smooth process, nugget filtered); black line: the {th[0]:g} "
+                               "°C contour; dots: the casts used; dotted lines: latitude and "
+                               "longitude; the bar gives the scale in km.")
+    maps_body += pg.figure_html(pngs.get("anomalies"), "anomaly maps",
+                                "Bottom temperature minus the mean map of the reference "
+                                "period, latest years (°C): blue colder, orange warmer.")
+    sections.append(S("maps", "Bottom-temperature maps",
+                      [f"Maps of every year on one colour scale; the thresholds of the areas "
+                       f"are {tt}. Mapped values are least certain far from the casts (see "
+                       "the standard deviation in fields.nc)."], maps_body))
+    cls_paras, cls_body = pg.classes_body(classes, cuts or {})
+    sections.append(S("classes", "Year classes", cls_paras, cls_body))
+    sections.append(S("shifts", "Regime shifts",
+                      pg.shifts_paragraphs(shifts.shifts, cfg.shifts.p_max, cfg.shifts.column),
+                      pg.details_table(shifts.shifts, "shifts")
+                      + pg.details_table(shifts.regimes, "regimes")))
+    if skill_tab is not None:
+        sections.append(S("skill", "Ice skill and outlook",
+                          ["Correlation of each winter-ice predictor with the target at each "
+                           "lag, with effective-sample-size p-values and Benjamini-Hochberg "
+                           "q-values (outlined when q < 0.1), then the cross-validated "
+                           "hindcast against persistence and the outlook with its interval."],
+                          pg.figure_html(pngs.get("skill"), "skill", "Correlation by "
+                                         "predictor and lag (outlined: q < 0.1).")
+                          + pg.figure_html(pngs.get("hindcast"), "hindcast",
+                                           "Observed, hindcast and persistence, with the "
+                                           "outlook and its interval.")
+                          + pg.details_table(skill_tab.sort_values("q_value"),
+                                             "predictor and lag pairs", newest_last=False)))
+    if proj is not None:
+        sections.append(S("projections", "Projections",
+                          ["Probability of a cold year under each model and scenario after "
+                           "bias adjustment, and the stop year: the first year from which "
+                           "the chance of any cold year in the window stays below the stop "
+                           "probability. The last cold year is the last year any member was "
+                           "cold, which can fall after the stop year when an isolated cold "
+                           "year remains possible but unlikely."],
+                          pg.figure_html(pngs.get("projection"), "projection",
+                                         "Probability of a cold year by model, one panel a "
+                                         "scenario; ▼ marks stop years.")
+                          + pg.figure_html(pngs.get("stop_years"), "stop years",
+                                           "Stop year by model and scenario; open arrows "
+                                           "mark censored models (no stop year by the end "
+                                           "of the record, or never cold in it).")
+                          + pg.details_table(proj.emergence, "models and scenarios",
+                                             newest_last=False)))
+    sections.append(S("revisions", "Revisions",
+                      [f"{len(revisions)} past values changed since the previous release, "
+                       "each with its cause (new casts, a changed setting, a new method)."
+                       if len(revisions) else "No past value changed beyond the tolerance."],
+                      pg.details_table(revisions, "revisions") if len(revisions) else ""))
+    outliers = res.outliers if res is not None else pd.DataFrame()
     qc_counts = check.qc.table["flag"].value_counts().rename_axis("flag").reset_index(
         name="casts")
-    sections = [
-        ("Indices", "<p>Expected areas below each threshold (km²), the area-weighted mean "
-         "bottom temperature (°C), coverage and cross-validation error per year.</p>"
-         "{{figure:series}}" + t(indices[[c for c in cols if c in indices]])),
-        ("Bottom-temperature maps", "<p>Kriged bottom temperature of the latest years (smooth "
-         "process), the 2 °C contour, the casts used and the domain outline.</p>"
-         "{{figure:maps}}"),
-        ("Year classes", t(classes.pivot(index="year", columns="column", values="class")
-                           .reset_index())),
-        ("Regime shifts", t(shifts.shifts) + t(shifts.regimes)),
-    ]
-    if skill_tab is not None:
-        sections.append(("Ice skill and outlook", "{{figure:skill}}{{figure:hindcast}}"
-                         + t(skill_tab.sort_values("q_value").head(12))))
-    if proj is not None:
-        sections.append(("Projections", "{{figure:projection}}"
-                         + t(proj.emergence)))
-    sections += [
-        ("Revisions", t(revisions) if len(revisions) else
-         "<p>No past value changed beyond the tolerance.</p>"),
-        ("Quality control", f"<p>Domain: {escape(check.domain_source)}.</p>"
-         + t(qc_counts)),
-        ("Methods", "<p>Ordinary kriging (or kriging with a depth drift) of each year's casts "
-         "on a fixed equal-area grid (Isaaks &amp; Srivastava 1989), leave-one-out "
-         "cross-validation (Dubrule 1983), conditional simulation by circulant embedding "
-         "(Dietrich &amp; Newsam 1997); STARS (Rodionov 2004) and PELT (Killick et al. 2012) "
-         "with a red-noise bootstrap of the whole detection; ice skill with Bretherton et al. "
-         "(1999) effective sample sizes, Benjamini &amp; Hochberg (1995) q-values and "
-         "Williams' t (Steiger 1980); quantile delta mapping (Cannon et al. 2015). Details "
-         "and assumptions: docs/methods.md of the coldindex distribution.</p>"),
-    ]
+    qc_body = f"<p>Domain: {escape(check.domain_source)}.</p>" + pg.details_table(
+        qc_counts, "flags", newest_last=False)
+    if len(outliers):
+        qc_body += pg.details_table(outliers, "spatial outliers", newest_last=False)
+    sections.append(S("qc", "Quality control",
+                      pg.qc_paragraphs(check.qc.table, outliers, cfg.index.outlier_z), qc_body))
+    stages = ["index", "shifts"] + (["skill"] if skill_tab is not None else []) + (
+        ["project"] if proj is not None else [])
+    sections.append(S("methods", "Methods", [pg.methods_paragraph(
+        stages, with_drift=cfg.inputs.bathymetry is not None,
+        with_sims=cfg.index.sims > 0 and cfg.index.method == "kriging",
+        with_regions=res is not None and res.regions is not None,
+        with_outliers=cfg.index.outlier_z > 0)]))
     inputs = "".join(f"<li><code>{escape(k)}</code> sha256 {escape(v)}</li>"
                      for k, v in prov["inputs_sha256"].items())
     provenance = (f"<p>coldindex {escape(prov['version'])}; Python "
                   f"{escape(prov['versions']['python'])}, numpy "
                   f"{escape(prov['versions']['numpy'])}. Inputs:</p><ul>{inputs}</ul>"
                   "<p>The run time and per-output checksums are in provenance.json.</p>")
-    return render(cfg.report.title, headlines, sections, pngs, CAUTIONS, provenance)
+    return pg.render_page(title, subtitle, CAUTIONS, headlines, sections, provenance)

@@ -275,3 +275,61 @@ def node_weights(weights: FloatArray, node_of_cell: NDArray[np.int_] | None,
     for k in range(w.shape[0]):
         out[k] = np.bincount(node_of_cell, weights=w[k], minlength=n_nodes)
     return out
+
+
+def lines_from_geojson(obj: object, domain: Domain, source: str = "coastline"
+                       ) -> list[FloatArray]:
+    """Coastline lines in the domain's plane, for maps only. [km]
+
+    Parameters
+    ----------
+    obj
+        Parsed GeoJSON: any mix of (Multi)LineString and (Multi)Polygon geometries,
+        features or collections, in lon/lat.
+    domain
+        The domain (its projection and longitude centre are used).
+    source
+        File name used in messages.
+
+    Returns
+    -------
+    list
+        Lines as (k, 2) arrays in the equal-area plane (polygon rings included). [km]
+    """
+    geoms: list[object] = []
+
+    def collect(o: object) -> None:
+        if not isinstance(o, dict):
+            return
+        kind = o.get("type")
+        if kind == "FeatureCollection":
+            for f in o.get("features") or []:
+                collect(f)
+        elif kind == "Feature":
+            collect(o.get("geometry"))
+        elif kind == "GeometryCollection":
+            for g in o.get("geometries") or []:
+                collect(g)
+        elif kind is not None:
+            try:
+                geoms.append(shape(o))
+            except Exception:  # shapely raises several types for bad geometry
+                raise InputError(f"{source}: a {kind} geometry cannot be read; give lines or "
+                                 "polygons in lon/lat.") from None
+
+    collect(obj)
+    if not geoms:
+        raise InputError(f"{source} holds no line or polygon; give the coastline as GeoJSON "
+                         "lines or polygons in lon/lat.")
+    out: list[FloatArray] = []
+    for g in geoms:
+        for part in getattr(g, "geoms", [g]):
+            rings = ([part.exterior, *part.interiors] if isinstance(part, Polygon)
+                     else [part])
+            for r in rings:
+                c = np.asarray(getattr(r, "coords", []), float)
+                if c.ndim != 2 or len(c) < 2:
+                    continue
+                x, y = domain.to_xy(c[:, 0], c[:, 1])
+                out.append(np.column_stack([x, y]))
+    return out

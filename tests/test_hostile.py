@@ -750,7 +750,10 @@ def release(tmp_path_factory, good: Path) -> tuple[Path, Path]:
 
 
 ALLOWED_TAGS = {"html", "head", "meta", "title", "style", "body", "h1", "h2", "p", "ul", "li",
-                "table", "thead", "tbody", "tr", "th", "td", "img", "code"}
+                "table", "thead", "tbody", "tr", "th", "td", "img", "code",
+                # the report's structure: contents, sections, figures, disclosure elements
+                "nav", "ol", "a", "section", "figure", "figcaption", "details", "summary",
+                "div"}
 
 
 def test_report_carries_no_injected_markup(release):
@@ -770,7 +773,10 @@ def test_report_carries_no_injected_markup(release):
     assert {t for t, _ in tags} <= ALLOWED_TAGS
     for tag, attrs in tags:
         names = {a for a, _ in attrs}
-        assert names <= {"lang", "charset", "class", "alt", "src"}, (tag, attrs)
+        assert names <= {"lang", "charset", "class", "alt", "src", "id", "href", "name",
+                         "content"}, (tag, attrs)
+        if tag == "a":  # only links inside the page
+            assert dict(attrs)["href"].startswith("#"), attrs
         if tag == "img":
             assert dict(attrs)["src"].startswith("data:image/png;base64,")
     joined = "".join(texts)

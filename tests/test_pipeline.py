@@ -130,7 +130,7 @@ def test_report_is_self_contained(first_release):
 
     P().feed(page)
     assert len(srcs) >= 4
-    for s in srcs:
+    for s in [s for s in srcs if not s.startswith("#")]:  # "#..." links inside the page
         assert s.startswith("data:image/png;base64,"), s[:40]
         data = base64.b64decode(s.split(",", 1)[1], validate=True)
         assert data[:8] == b"\x89PNG\r\n\x1a\n"

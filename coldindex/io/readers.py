@@ -341,6 +341,22 @@ def read_regions(path: Path, domain: Domain) -> list:
     return regions_from_geojson(obj, domain, source=str(path))
 
 
+def read_coastline(path: Path, domain: Domain) -> list:
+    """Read a coastline (GeoJSON lines or polygons) into the domain's plane, for maps."""
+    from coldindex.regions import lines_from_geojson
+
+    _check_file(path)
+    try:
+        obj = json.loads(_read_bytes(path).decode("utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path} is not valid GeoJSON ({exc}); give the coastline as lines "
+                         "or polygons (inputs.coastline).") from None
+    except RecursionError:
+        raise InputError(f"{path} is nested too deeply to be a GeoJSON coastline "
+                         "(inputs.coastline).") from None
+    return lines_from_geojson(obj, domain, source=str(path))
+
+
 def read_bathymetry(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Read a bathymetry grid on 1-D lon/lat axes.
 
