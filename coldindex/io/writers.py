@@ -342,6 +342,40 @@ def sha256_file(path: Path) -> str:
     return h.hexdigest()
 
 
+TIME_UNITS = "days since 1970-01-01 00:00:00"
+
+
+def survey_times(years: Sequence[int], casts: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Median cast date of each survey and its first and last cast dates. [days since 1970]
+
+    Parameters
+    ----------
+    years
+        Survey years.
+    casts
+        Casts used, with ``year`` and ``date`` (text; blank or unreadable dates are left out).
+
+    Returns
+    -------
+    tuple
+        Median dates (n,) and bounds (n, 2), in :data:`TIME_UNITS`; NaN for a year
+        without dates.
+    """
+    time = np.full(len(years), np.nan)
+    bounds = np.full((len(years), 2), np.nan)
+    if "date" not in casts.columns or casts.empty:
+        return time, bounds
+    when = pd.to_datetime(casts["date"].where(casts["date"].astype(str).str.strip() != ""),
+                          errors="coerce", format="mixed")
+    days = (when - pd.Timestamp("1970-01-01")) / pd.Timedelta(days=1)
+    for k, yr in enumerate(years):
+        d = days[(casts["year"] == yr).to_numpy()].dropna().to_numpy(float)
+        if len(d):
+            time[k] = float(np.median(d))
+            bounds[k] = (float(d.min()), float(d.max()))
+    return time, bounds
+
+
 def fields_dataset(years: list[int], estimate: np.ndarray, sd: np.ndarray,
                    thresholds: Sequence[float], grid: Grid, domain: Domain,
                    casts: pd.DataFrame) -> xr.Dataset:
@@ -359,7 +393,9 @@ def fields_dataset(years: list[int], estimate: np.ndarray, sd: np.ndarray,
     grid, domain
         The grid and its domain (for coordinates and the grid mapping).
     casts
-        Casts used, with ``year``, ``lat``, ``lon``, ``bottom_c``.
+        Casts used, with ``year``, ``lat``, ``lon``, ``bottom_c`` and ``date`` (for
+        the CF time coordinate: median cast date per year, bounded by the first and
+        last cast dates).
 
     Returns
     -------
@@ -407,8 +443,16 @@ def fields_dataset(years: list[int], estimate: np.ndarray, sd: np.ndarray,
         "units": "degC", "long_name": "bottom temperature of the cast"})
     cf = domain.crs.to_cf()
     data_vars["albers_conical_equal_area"] = ((), np.int32(0), cf)
+    time, bounds = survey_times(years, casts)
+    data_vars["time_bnds"] = (("year", "nv"), bounds, {
+        "units": TIME_UNITS, "calendar": "standard",
+        "long_name": "first and last cast date of the survey"})
     coords = {
         "year": ("year", np.asarray(years, "int32"), {"long_name": "survey year"}),
+        "time": ("year", time, {
+            "standard_name": "time", "units": TIME_UNITS, "calendar": "standard",
+            "axis": "T", "bounds": "time_bnds",
+            "long_name": "median cast date of the survey (NaN without dates)"}),
         "y": ("y", grid.y * 1000.0, {"standard_name": "projection_y_coordinate",
                                      "units": "m"}),
         "x": ("x", grid.x * 1000.0, {"standard_name": "projection_x_coordinate",
