@@ -133,6 +133,39 @@ DomainOpt = Annotated[Path | None, typer.Option(
     "the stations sampled in most years, written out, and reused next time.")]
 
 
+ProfilesOpt = Annotated[Path | None, typer.Option(
+    "--profiles", help="Profiles instead of a casts file: CF profile NetCDF (featureType "
+    "profile) or a long CSV/Parquet table, one sample a row; casts.csv (one bottom value a "
+    "cast, with the sample that made it) is written beside the other outputs.")]
+ProfileColumnsOpt = Annotated[str | None, typer.Option(
+    "--profile-columns", help="Map the profile table's headers to ours: ours=theirs,... e.g. "
+    "cast=CastID,temperature_c=TEMP,pressure_dbar=PRES.")]
+MaxGapOpt = Annotated[float, typer.Option(
+    "--max-gap-m", help="Profiles: the deepest good sample may lie at most this far above the "
+    "sea floor (recorded bottom depth, else --bathymetry).")]
+AverageOpt = Annotated[float, typer.Option(
+    "--average-m", help="Profiles: average the good samples this far above the deepest "
+    "(0 = the deepest alone).")]
+
+
+def _cast_source(casts: Path | None, profiles: Path | None, columns: str | None,
+                 profile_columns: str | None, max_gap_m: float, average_m: float
+                 ) -> tuple[Path, dict[str, str], Any]:
+    """The casts file or the profiles file, its header map and the profile settings."""
+    from coldindex.config import ConfigError, ProfileOptions
+
+    if (casts is None) == (profiles is None):
+        raise ConfigError("Give a casts file or --profiles FILE (one of them, not both).")
+    if profiles is None:
+        assert casts is not None
+        return casts, parse_column_map(columns), None
+    try:
+        popts = ProfileOptions(max_gap_m=max_gap_m, average_m=average_m)
+    except ConfigError as exc:
+        raise ConfigError(str(exc).replace("profiles.", "--").replace("_", "-")) from None
+    return profiles, parse_column_map(profile_columns, "--profile-columns"), popts
+
+
 def _doy_text(doy: float) -> str:
     if pd.isna(doy):
         return "-"
@@ -143,20 +176,31 @@ def _doy_text(doy: float) -> str:
 @app.command()
 @_guard
 def check(
-    casts: Annotated[Path, typer.Argument(help="Casts file (CSV or Parquet).")],
+    casts: Annotated[Path | None, typer.Argument(
+        help="Casts file (CSV or Parquet); or give --profiles.")] = None,
     domain: DomainOpt = None,
     columns: ColumnsOpt = None,
     out: Annotated[Path | None, typer.Option(
         "--out", help="Folder for qc.csv (every input row with its flag).")] = None,
     min_casts: Annotated[int, typer.Option(help="Casts a year needs to be usable.")] = 30,
     show: Annotated[int, typer.Option(help="Flagged rows to list (0 = none).")] = 40,
+    profiles: ProfilesOpt = None,
+    profile_columns: ProfileColumnsOpt = None,
+    bathymetry: Annotated[Path | None, typer.Option(
+        help="Profiles: bathymetry NetCDF for casts without a recorded bottom depth.")] = None,
+    max_gap_m: MaxGapOpt = 10.0,
+    average_m: AverageOpt = 0.0,
 ) -> None:
-    """Read casts, run quality control, and print a per-year summary."""
+    """Read casts (or profiles), run quality control, and print a per-year summary."""
     from coldindex.io.writers import plan_outputs, write_csv
-    from coldindex.pipeline import run_check
+    from coldindex.pipeline import PROFILE_CASTS_NAME, run_check
 
-    outputs = plan_outputs(out, "check", ("qc.csv",), (casts, domain)) if out else None
-    run = run_check(casts, parse_column_map(columns), domain)
+    source, mapping, popts = _cast_source(casts, profiles, columns, profile_columns,
+                                          max_gap_m, average_m)
+    casts = source
+    names = ("qc.csv",) + ((PROFILE_CASTS_NAME,) if popts else ())
+    outputs = plan_outputs(out, "check", names, (casts, domain, bathymetry)) if out else None
+    run = run_check(casts, mapping, domain, profiles=popts, bathymetry_path=bathymetry)
     qc = run.qc
     counts = qc.counts_by_year()
     reasons = [c for c in counts.columns if c not in ("ok", "median_doy")]
@@ -189,6 +233,8 @@ def check(
     if outputs is not None:
         with outputs as o:
             write_csv(qc.table.drop(columns=["doy"]), o.path("qc.csv"))
+            if run.profile_casts is not None:
+                write_csv(run.profile_casts, o.path(PROFILE_CASTS_NAME))
         for path in outputs.written:
             out_console.print(f"Wrote {path}")
     if (counts["ok"] >= min_casts).sum() == 0:
@@ -200,8 +246,9 @@ def check(
 @app.command()
 @_guard
 def index(
-    casts: Annotated[Path, typer.Argument(help="Casts file (CSV or Parquet).")],
     out: Annotated[Path, typer.Option("--out", help="Output folder.")],
+    casts: Annotated[Path | None, typer.Argument(
+        help="Casts file (CSV or Parquet); or give --profiles.")] = None,
     domain: DomainOpt = None,
     grid_km: Annotated[float, typer.Option(help="Grid cell side in km.")] = 5.0,
     thresholds: Annotated[str, typer.Option(help="Thresholds in °C, comma separated.")] = "2,0",
@@ -240,6 +287,10 @@ def index(
         help="Spatial-outlier threshold on |z|, the leave-one-out standardized residual "
              "from the year's fit; flagged casts are kept out of the refit (0 = off).")
     ] = IndexOptions.outlier_z,
+    profiles: ProfilesOpt = None,
+    profile_columns: ProfileColumnsOpt = None,
+    max_gap_m: MaxGapOpt = 10.0,
+    average_m: AverageOpt = 0.0,
 ) -> None:
     """Map bottom temperature each year and compute cold-water areas with uncertainty."""
     from coldindex.config import ConfigError
@@ -253,16 +304,18 @@ def index(
                             outlier_z=outlier_z, depth_zones=depth_zones)
     except ConfigError as exc:
         raise ConfigError(str(exc).replace("index.", "--").replace("_", "-")) from None
+    source, mapping, popts = _cast_source(casts, profiles, columns, profile_columns,
+                                          max_gap_m, average_m)
     progress = Progress(TextColumn("[bold]Mapping survey years"), BarColumn(),
                         MofNCompleteColumn(), TextColumn("{task.description}"),
                         TimeElapsedColumn(), console=err_console, transient=True)
     with progress:
         task = progress.add_task("", total=None)
-        run = run_index(casts, out, opts, parse_column_map(columns), domain, bathymetry,
+        run = run_index(source, out, opts, mapping, domain, bathymetry,
                         progress=lambda yr: progress.update(task, advance=1,
                                                             description=str(yr)),
                         on_start=lambda n: progress.update(task, total=n),
-                        regions_path=regions)
+                        regions_path=regions, profiles=popts)
     res = run.result
     flagged = int((run.check.qc.table["flag"] != "ok").sum()) + len(res.outliers)
     out_console.print(f"{len(res.years)} years, {len(run.check.qc.casts)} casts used, "
@@ -681,6 +734,51 @@ def project(
         write_figure(projection_figure(res.projection, res.emergence),
                      o.path("projection.png"))
     for p in outputs.written:
+        out_console.print(f"Wrote {p}")
+
+
+@app.command()
+@_guard
+def ice(
+    fields: Annotated[list[Path], typer.Argument(
+        help="Gridded ice NetCDF files (CF sea_ice_area_fraction, optional "
+             "sea_ice_thickness), daily or monthly, on one grid.")],
+    regions: Annotated[Path, typer.Option(
+        "--regions", help="GeoJSON of named regions (a name property per feature).")],
+    out: OutOpt,
+    density_kg_m3: Annotated[float, typer.Option(
+        help="Sea-ice density for the mass (kg m-3).")] = 917.0,
+    extent_threshold: Annotated[float, typer.Option(
+        help="Concentration (fraction) from which a cell counts toward the extent.")] = 0.15,
+    thickness: Annotated[str, typer.Option(
+        help="auto (read sea_ice_thickness's cell_methods), floe (times concentration) or "
+             "cell (already a mean over the cell).")] = "auto",
+) -> None:
+    """Monthly ice area, extent, volume and mass per region from gridded ice fields.
+
+    Writes ice_fields.csv (year, month, region, quantity, value) and ice_fields.json
+    (the inputs, region areas and how thickness was read).
+    """
+    from coldindex.config import ConfigError, IceFieldsOptions
+    from coldindex.sources import run_ice
+
+    try:
+        opts = IceFieldsOptions(density_kg_m3=density_kg_m3,
+                                extent_threshold=extent_threshold, thickness=thickness)
+    except ConfigError as exc:
+        raise ConfigError(str(exc).replace("ice_fields.", "--").replace("_", "-")) from None
+    res = run_ice(fields, regions, out, opts)
+    t = res.table
+    for name, r in res.record["regions"].items():
+        out_console.print(f"Region {name}: {r['area_km2']:.0f} km² on the grid "
+                          f"(polygon {r['region_polygon_km2']:.0f} km²).")
+    span = t.sort_values(["year", "month"])
+    out_console.print(f"{res.record['time_steps']} time steps into "
+                      f"{len(span[['year', 'month']].drop_duplicates())} months "
+                      f"({int(span['year'].iloc[0])}-{int(span['month'].iloc[0]):02d} to "
+                      f"{int(span['year'].iloc[-1])}-{int(span['month'].iloc[-1]):02d}); "
+                      f"thickness: {res.record['thickness'] or 'none'}.")
+    for p in res.written:
         out_console.print(f"Wrote {p}")
 
 

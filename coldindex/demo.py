@@ -25,6 +25,20 @@ The physical story
 * In 1997 only the western half of the shelf was sampled (low coverage).
 * Planted faults: a blank, a sentinel, an identical and a conflicting duplicate,
   a cast outside the domain, and a latitude with its sign lost.
+
+The raw sources
+---------------
+* ``profiles.nc``: a CTD profile for every cast with a bottom value (CF contiguous
+  ragged array, pressure as CF ``sea_water_pressure``, atmosphere included), sampled
+  every 5 dbar down to a few metres above the floor; the bottom water is well mixed
+  over the lowest 40 % of the column. Planted: casts that stopped 40 m above the
+  floor, a temperature spike, an upcast stored bottom first, and casts without a
+  recorded bottom depth (the bathymetry file stands in).
+* ``ice_fields.nc``: monthly ice concentration (%) and floe thickness on a 25 km
+  polar stereographic grid over the shelf, April to November, its ice edge and
+  thickness following the same winters as ``ice.csv``.
+* ``coldindex-raw.toml`` runs the whole update from these two, the domain, the
+  bathymetry and the trajectories.
 """
 
 from __future__ import annotations
@@ -270,6 +284,202 @@ def _config_text() -> str:
     return TEMPLATE.replace(old, 'months = "5-10"  ')
 
 
+PROFILE_STEP_DBAR = 5.0  # CTD bin size of the invented profiles
+STOPPED_SHORT = 12  # casts whose profile ends 40 m above the floor
+NO_FLOOR = 25  # casts without a recorded bottom depth
+ICE_GRID_M = 25000.0  # ice-field grid spacing
+ICE_FIELD_MONTHS = (4, 5, 6, 7, 8, 9, 10, 11)
+
+
+def _clean_casts(casts: pd.DataFrame) -> pd.DataFrame:
+    """The casts as sampled: planted duplicates, the outside cast and lost signs undone."""
+    c = casts[casts["station"] != "T00-S00"].copy()
+    c["lat"] = -c["lat"].astype(float).abs()
+    c = c.drop_duplicates(["year", "station", "date"], keep="first")
+    value = pd.to_numeric(c["bottom_c"], errors="coerce")
+    return c[value.between(-3.0, 30.0)].assign(bottom_c=value).reset_index(drop=True)
+
+
+def make_profiles(sc: Scenario, seed: int = SEED) -> xr.Dataset:
+    """Invented CTD profiles for the casts, as a CF contiguous ragged array.
+
+    Parameters
+    ----------
+    sc
+        The scenario (its casts give position, date, floor and bottom temperature).
+    seed
+        Base seed.
+
+    Returns
+    -------
+    xarray.Dataset
+        ``featureType = "profile"``; temperature, pressure (atmosphere included) and
+        salinity packed as 16-bit integers.
+    """
+    import gsw
+
+    from coldindex.profiles import ATMOSPHERE_DBAR
+
+    c = _clean_casts(sc.casts)
+    r = np.random.default_rng(np.random.SeedSequence([seed, 77]))
+    n = len(c)
+    pick = r.permutation(n)
+    short = set(pick[:STOPPED_SHORT].tolist())
+    no_floor = set(pick[STOPPED_SHORT:STOPPED_SHORT + NO_FLOOR].tolist())
+    spike, upcast = int(pick[-1]), int(pick[-2])
+    temps, pres, sals, counts = [], [], [], []
+    for i, row in enumerate(c.itertuples(index=False)):
+        floor = float(row.depth_m)
+        stop = floor - r.uniform(2.0, 6.0) - (40.0 if i in short else 0.0)
+        depth = np.arange(5.0, stop + 1e-9, PROFILE_STEP_DBAR)
+        if depth.size == 0 or depth[-1] < stop - 1.0:
+            depth = np.append(depth, stop)
+        mixed = 0.6 * floor  # the bottom water is well mixed below this depth
+        surface = max(float(row.bottom_c), 0.6) + r.uniform(0.3, 1.5)
+        shape = np.clip(1.0 - depth / mixed, 0.0, 1.0) ** 2
+        t = row.bottom_c + (surface - row.bottom_c) * shape + r.normal(0, 0.002, depth.size)
+        if i == spike:
+            t[len(t) // 2] += 8.0
+        s = 34.25 - 0.35 * shape + r.normal(0, 0.003, depth.size)
+        p = gsw.p_from_z(-depth, float(row.lat)) + ATMOSPHERE_DBAR
+        if i == upcast:
+            t, s, p = t[::-1], s[::-1], p[::-1]
+        temps.append(t)
+        sals.append(s)
+        pres.append(p)
+        counts.append(depth.size)
+    floor_rec = c["depth_m"].astype(float).to_numpy().copy()
+    floor_rec[sorted(no_floor)] = np.nan
+    hours = r.uniform(0.0, 24.0, n)
+    times = (pd.to_datetime(c["date"]) + pd.to_timedelta(np.round(hours * 60), unit="min"))
+    cast_id = (c["year"].astype(str) + "-" + c["station"]).to_numpy()
+    packed = {"dtype": "int16", "_FillValue": np.int16(-32768)}
+    ds = xr.Dataset(
+        {
+            "profile_id": (("profile",), cast_id.astype("U"), {"cf_role": "profile_id",
+                                                              "long_name": "cast id"}),
+            "station": (("profile",), c["station"].to_numpy().astype("U"),
+                        {"long_name": "station name"}),
+            "time": (("profile",), times.to_numpy(), {"standard_name": "time",
+                                                      "axis": "T"}),
+            "lat": (("profile",), c["lat"].astype(float).to_numpy(),
+                    {"standard_name": "latitude", "units": "degrees_north"}),
+            "lon": (("profile",), c["lon"].astype(float).to_numpy(),
+                    {"standard_name": "longitude", "units": "degrees_east"}),
+            "bottom_depth": (("profile",), floor_rec.astype("float32"), {
+                "standard_name": "sea_floor_depth_below_sea_surface", "units": "m",
+                "long_name": "echo-sounder depth at the cast (invented)"}),
+            "row_size": (("profile",), np.asarray(counts, "int32"), {
+                "sample_dimension": "obs", "long_name": "samples in each profile"}),
+            "temperature": (("obs",), np.concatenate(temps), {
+                "standard_name": "sea_water_temperature", "units": "degC",
+                "coordinates": "time lat lon pressure"}),
+            "pressure": (("obs",), np.concatenate(pres), {
+                "standard_name": "sea_water_pressure", "units": "dbar", "positive": "down",
+                "comment": "absolute pressure: sea pressure plus one standard atmosphere"}),
+            "salinity": (("obs",), np.concatenate(sals), {
+                "standard_name": "sea_water_practical_salinity", "units": "1"}),
+        },
+        attrs={"Conventions": "CF-1.8", "featureType": "profile",
+               "title": f"Invented CTD profiles of the {NAME} survey"},
+    )
+    ds["time"].encoding.update({"units": "minutes since 1990-01-01 00:00:00",
+                                "calendar": "standard", "dtype": "int32"})
+    ds["temperature"].encoding.update(packed, scale_factor=0.001, add_offset=5.0)
+    ds["pressure"].encoding.update(packed, scale_factor=0.01, add_offset=150.0)
+    ds["salinity"].encoding.update(packed, scale_factor=0.001, add_offset=30.0)
+    return ds
+
+
+def make_ice_fields(sc: Scenario) -> xr.Dataset:
+    """Invented monthly ice concentration and floe thickness on a polar stereographic grid.
+
+    The ice edge advances from the south over the shelf with the month's ice in
+    ``sc.ice``; the floes thicken with it. Concentration in percent.
+    """
+    import pyproj
+
+    crs = pyproj.CRS.from_cf({"grid_mapping_name": "polar_stereographic",
+                              "straight_vertical_longitude_from_pole": 180.0,
+                              "latitude_of_projection_origin": -90.0,
+                              "standard_parallel": -70.0, "false_easting": 0.0,
+                              "false_northing": 0.0, "semi_major_axis": 6378137.0,
+                              "inverse_flattening": 298.257223563})
+    dom = domain_from_polygon(_polygon())
+    fwd = pyproj.Transformer.from_crs(crs.geodetic_crs, crs, always_xy=True)
+    inv = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)
+    lon_o, lat_o = np.array(SHELF).T
+    px, py = fwd.transform(lon_o, lat_o)
+    x = np.arange(np.floor(min(px) / ICE_GRID_M) - 2, np.ceil(max(px) / ICE_GRID_M) + 3)
+    x = x * ICE_GRID_M
+    y = np.arange(np.floor(min(py) / ICE_GRID_M) - 2, np.ceil(max(py) / ICE_GRID_M) + 3)
+    y = y * ICE_GRID_M
+    X, Y = np.meshgrid(x, y)
+    lon, lat = inv.transform(X, Y)
+    _, north = dom.to_xy(lon, lat)  # km north in the shelf's own plane
+    lo_y, hi_y = dom.polygon_xy.bounds[1], dom.polygon_xy.bounds[3]
+    ice = sc.ice[sc.ice["month"].isin(ICE_FIELD_MONTHS)].sort_values(["year", "month"])
+    conc, thick = [], []
+    for v in ice["ice"].to_numpy(float):
+        share = np.clip(v / 6.5, 0.0, 1.0)  # share of the shelf under ice
+        edge = lo_y - 40.0 + share * (hi_y - lo_y + 80.0)
+        c = 95.0 * np.clip((edge - north) / 80.0 + 0.5, 0.0, 1.0)
+        conc.append(c)
+        thick.append(np.where(c > 0, 0.25 + 0.12 * v + 0.002 * (edge - north).clip(0), np.nan))
+    times = pd.to_datetime({"year": ice["year"], "month": ice["month"], "day": 15})
+    cf = crs.to_cf()
+    dims = ("time", "y", "x")
+    ds = xr.Dataset(
+        {
+            "siconc": (dims, np.asarray(conc), {
+                "standard_name": "sea_ice_area_fraction", "units": "%",
+                "grid_mapping": "polar_stereographic", "cell_methods": "time: mean",
+                "coordinates": "lat lon"}),
+            "sithick": (dims, np.asarray(thick), {
+                "standard_name": "sea_ice_thickness", "units": "m",
+                "grid_mapping": "polar_stereographic",
+                "cell_methods": "area: mean where sea_ice time: mean",
+                "coordinates": "lat lon"}),
+            "polar_stereographic": ((), np.int32(0), cf),
+        },
+        coords={
+            "time": ("time", times.to_numpy(), {"standard_name": "time"}),
+            "y": ("y", y, {"standard_name": "projection_y_coordinate", "units": "m"}),
+            "x": ("x", x, {"standard_name": "projection_x_coordinate", "units": "m"}),
+            "lat": (("y", "x"), np.round(lat, 5), {"standard_name": "latitude",
+                                                   "units": "degrees_north"}),
+            "lon": (("y", "x"), np.round(lon, 5), {"standard_name": "longitude",
+                                                   "units": "degrees_east"}),
+        },
+        attrs={"Conventions": "CF-1.8",
+               "title": f"Invented monthly sea ice over the {NAME}"},
+    )
+    ds["time"].encoding.update({"units": "days since 1990-01-01", "calendar": "standard",
+                                "dtype": "int32"})
+    ds["siconc"].encoding.update({"dtype": "int16", "_FillValue": np.int16(-32768),
+                                  "scale_factor": 0.01})
+    ds["sithick"].encoding.update({"dtype": "int16", "_FillValue": np.int16(-32768),
+                                   "scale_factor": 0.001})
+    return ds
+
+
+def _raw_config_text() -> str:
+    """The sample configuration that starts from the raw sources."""
+    text = _config_text()
+    for old, new in (
+        ('casts = "casts.csv"                  # CSV or Parquet: year, lat, lon, bottom_c, ...\n',
+         'profiles = "profiles.nc"             # CTD profiles (CF contiguous ragged array)\n'),
+        ('ice = "ice.csv"                      # optional: monthly ice (year, month, ice) for '
+         'the skill stage\n',
+         'ice_fields = ["ice_fields.nc"]       # gridded ice: the mass over the domain feeds '
+         'the skill stage\n'),
+    ):
+        if text.count(old) != 1:  # pragma: no cover - guards the template's wording
+            raise RuntimeError(f"the config template no longer holds {old.strip()!r}")
+        text = text.replace(old, new)
+    return text
+
+
 def write_scenario(out: Path, seed: int = SEED) -> list[Path]:
     """Write the invented inputs into ``out`` and return the paths written."""
     out.mkdir(parents=True, exist_ok=True)
@@ -284,6 +494,12 @@ def write_scenario(out: Path, seed: int = SEED) -> list[Path]:
     with atomic_path(out / "bathymetry.nc") as tmp:
         sc.bathymetry.to_netcdf(tmp, engine="scipy", format="NETCDF3_64BIT")
     paths.append(out / "bathymetry.nc")
+    for name, ds in (("profiles.nc", make_profiles(sc, seed)),
+                     ("ice_fields.nc", make_ice_fields(sc))):
+        with atomic_path(out / name) as tmp:
+            ds.to_netcdf(tmp, engine="scipy", format="NETCDF3_64BIT")
+        paths.append(out / name)
+    paths.append(write_bytes(_raw_config_text().encode(), out / "coldindex-raw.toml"))
     return paths
 
 

@@ -261,53 +261,60 @@ def bottom_values(samples: pd.DataFrame, casts: pd.DataFrame, options: ProfileOp
     floor_source = np.where(np.isfinite(recorded), "recorded",
                             np.where(np.isfinite(bathy), "bathymetry", ""))
     good = s[s["sample_flag"] == "ok"]
-    groups = {k: g for k, g in good.groupby("cast", sort=False)}
-    n_samples = s.groupby("cast").size()
-    rows = []
-    for i, r in c.iterrows():
-        cast = r["cast"]
-        g = groups.get(cast)
-        out = {"flag": "ok", "detail": "", "bottom_c": np.nan, "sample": "", "sample_depth_m":
-               np.nan, "sample_pressure_dbar": np.nan, "salinity": np.nan, "gap_m": np.nan,
-               "n_averaged": 0, "deepest_c": np.nan}
-        if g is None or g.empty:
-            out.update(flag="no_good_sample", detail=f"cast {cast}: none of its "
-                       f"{int(n_samples.get(cast, 0))} samples passed the profile checks")
-            rows.append(out)
-            continue
-        deepest = g.loc[g["depth_m"].idxmax()]
-        d0 = float(deepest["depth_m"])
-        if options.average_m > 0:
-            near = g[g["depth_m"] >= d0 - options.average_m]
-        else:
-            near = g.loc[[deepest.name]]
-        value = float(near["temperature_c"].mean())
-        sal_near = near["salinity"].to_numpy(float)
-        sal = float(np.nanmean(sal_near)) if np.isfinite(sal_near).any() else np.nan
-        gap = float(floor[i] - d0)
-        out.update(bottom_c=value, deepest_c=value, sample=str(int(deepest["sample"])),
-                   sample_depth_m=d0, sample_pressure_dbar=float(deepest["pressure_dbar"]),
-                   salinity=sal, gap_m=gap, n_averaged=len(near))
-        if not np.isfinite(floor[i]):
-            out.update(flag="floor_unknown", detail=f"cast {cast}: no recorded bottom depth "
-                       "and no bathymetry at its position, so its deepest sample cannot be "
-                       "checked against the sea floor")
-        elif gap > options.max_gap_m:
-            out.update(flag="not_near_bottom", detail=f"cast {cast}: deepest good sample at "
-                       f"{d0:.1f} m, sea floor at {floor[i]:.1f} m ({floor_source[i]}): "
-                       f"{gap:.1f} m above the floor, more than {options.max_gap_m:g} m")
-        else:
-            tf = float(freezing_point_c(
-                [sal if np.isfinite(sal) else default_salinity], [d0], [r["lat"]],
-                [r["lon"]])[0])
-            if value < tf - freeze_tolerance_c:
-                out.update(flag="below_freezing", detail=f"cast {cast}: bottom value "
-                           f"{value:.3f} < freezing point {tf:.3f} at {d0:.1f} m - "
-                           f"{freeze_tolerance_c:g}")
-        if out["flag"] != "ok":
-            out["bottom_c"] = np.nan
-        rows.append(out)
-    res = pd.DataFrame(rows, index=c.index)
+    n_samples = s.groupby("cast").size().reindex(c["cast"]).fillna(0).astype(int).to_numpy()
+    deepest = good.loc[good.groupby("cast")["depth_m"].idxmax()].set_index("cast")
+    deepest = deepest.reindex(c["cast"])
+    d0 = deepest["depth_m"].to_numpy(float)
+    near = good[good["depth_m"].to_numpy(float) >= good["cast"].map(
+        pd.Series(d0, index=c["cast"].to_numpy())).to_numpy(float) - options.average_m]
+    agg = near.groupby("cast").agg(value=("temperature_c", "mean"),
+                                   sal=("salinity", "mean"),
+                                   n=("temperature_c", "size")).reindex(c["cast"])
+    value = agg["value"].to_numpy(float)
+    sal = agg["sal"].to_numpy(float)
+    has = np.isfinite(d0)
+    gap = floor - d0
+    flag = np.full(len(c), "ok", dtype=object)
+    detail = np.full(len(c), "", dtype=object)
+    for i in np.flatnonzero(~has):
+        flag[i] = "no_good_sample"
+        detail[i] = (f"cast {c['cast'].iloc[i]}: none of its {n_samples[i]} samples passed "
+                     "the profile checks")
+    for i in np.flatnonzero(has & ~np.isfinite(floor)):
+        flag[i] = "floor_unknown"
+        detail[i] = (f"cast {c['cast'].iloc[i]}: no recorded bottom depth and no bathymetry "
+                     "at its position, so its deepest sample cannot be checked against the "
+                     "sea floor")
+    with np.errstate(invalid="ignore"):
+        far = has & np.isfinite(floor) & (gap > options.max_gap_m)
+    for i in np.flatnonzero(far):
+        flag[i] = "not_near_bottom"
+        detail[i] = (f"cast {c['cast'].iloc[i]}: deepest good sample at {d0[i]:.1f} m, sea "
+                     f"floor at {floor[i]:.1f} m ({floor_source[i]}): {gap[i]:.1f} m above "
+                     f"the floor, more than {options.max_gap_m:g} m")
+    check = np.flatnonzero(flag == "ok")
+    if len(check):
+        tf = freezing_point_c(np.where(np.isfinite(sal[check]), sal[check], default_salinity),
+                              d0[check], c["lat"].to_numpy(float)[check],
+                              c["lon"].to_numpy(float)[check])
+        for i, f in zip(check, tf, strict=True):
+            if value[i] < f - freeze_tolerance_c:
+                flag[i] = "below_freezing"
+                detail[i] = (f"cast {c['cast'].iloc[i]}: bottom value {value[i]:.3f} < freezing "
+                             f"point {f:.3f} at {d0[i]:.1f} m - {freeze_tolerance_c:g}")
+    sample_pos = deepest["sample"].to_numpy(float)
+    bad = s[s["sample_flag"] != "ok"]
+    counts = bad.groupby(["cast", "sample_flag"]).size()
+    summary = {cast: "; ".join(f"{f} {int(n)}" for (_, f), n in g.items())
+               for cast, g in counts.groupby(level=0)}
+    res = pd.DataFrame({
+        "flag": flag, "detail": detail,
+        "bottom_c": np.where(flag == "ok", value, np.nan),
+        "deepest_c": value, "salinity": sal, "gap_m": gap, "sample_depth_m": d0,
+        "sample_pressure_dbar": deepest["pressure_dbar"].to_numpy(float),
+        "n_averaged": agg["n"].fillna(0).to_numpy(int),
+        "sample": ["" if not np.isfinite(v) else str(int(v)) for v in sample_pos],
+    }, index=c.index)
     time = pd.to_datetime(c["time"])
     year = (c["year"].astype(float) if "year" in c and c["year"].notna().all()
             else time.dt.year.astype(float))
@@ -326,6 +333,8 @@ def bottom_values(samples: pd.DataFrame, casts: pd.DataFrame, options: ProfileOp
         "sample_depth_m": [_fmt(v, 2) for v in res["sample_depth_m"]],
         "sample_pressure_dbar": [_fmt(v, 2) for v in res["sample_pressure_dbar"]],
         "n_averaged": res["n_averaged"].astype(int).astype(str),
+        "n_samples": n_samples.astype(str),
+        "flagged_samples": [summary.get(k, "") for k in c["cast"]],
         "floor_source": floor_source,
         "gap_m": [_fmt(v, 2) for v in res["gap_m"]],
         "deepest_c": [_fmt(v, 3) for v in res["deepest_c"]],

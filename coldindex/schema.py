@@ -167,6 +167,9 @@ CASTS_FROM_PROFILES = Table(
                "float"),
         Column("sample_pressure_dbar", "dbar", "Sea pressure of that sample.", "float"),
         Column("n_averaged", "1", "Samples averaged into bottom_c.", "int"),
+        Column("n_samples", "1", "Samples in the cast's profile.", "int"),
+        Column("flagged_samples", "-", "Samples refused by the profile checks, by reason "
+               "(`missing`, `implausible`, `non_monotonic`, `spike`), e.g. `spike 1`.", "str"),
         Column("floor_source", "-", "`recorded`, `bathymetry` or blank (unknown).", "str"),
         Column("gap_m", "m", "Sea-floor depth minus the deepest good sample's depth.",
                "float"),
@@ -273,7 +276,8 @@ def area_column(threshold: float) -> str:
     return f"below_{threshold_label(threshold)}c_km2"
 
 
-def indices_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
+def indices_table(thresholds: Sequence[float], with_sims: bool = True,
+                  with_timing: bool = False) -> Table:
     """Layout of ``indices.csv`` for the given thresholds.
 
     Parameters
@@ -282,6 +286,8 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
         Temperature thresholds. [°C]
     with_sims
         Whether the simulation summaries (``_sd``, ``_lo90``, ``_hi90``) are present.
+    with_timing
+        Whether the survey-day drift columns are present (``index.timing_drift``).
 
     Returns
     -------
@@ -330,6 +336,14 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True) -> Table:
                "matches the data at the casts' spacing; it does not check the areas' "
                "intervals; blank for IDW).", "float"),
     ]
+    if with_timing:
+        cols += [
+            Column("timing_rate_c_per_day", "degC/day", "Fitted change of bottom temperature "
+                   "per survey day (the survey-day drift coefficient; with index.timing_drift)."),
+            Column("timing_adjustment_c", "degC", "How much the adjustment to the reference "
+                   "day moved the year's mean: rate times (reference day minus the year's "
+                   "median survey day)."),
+        ]
     if with_sims:
         cols.append(Column("simulation", "-", "How the conditional simulations were drawn: "
                            "circulant (circulant embedding on the grid), exact (Cholesky "

@@ -8,7 +8,7 @@ from coldindex.demo import write_scenario
 from tests.conftest import SAMPLE
 
 FILES = ("casts.csv", "ice.csv", "trajectories.csv", "domain.geojson", "coldindex.toml",
-         "bathymetry.nc")
+         "bathymetry.nc", "profiles.nc", "ice_fields.nc", "coldindex-raw.toml")
 
 
 def test_demo_inputs_are_reproducible_and_match_the_committed_sample(tmp_path: Path):
@@ -84,3 +84,62 @@ def test_demo_command_end_to_end(tmp_path: Path):
     skill = pd.read_csv(release / "skill.csv")
     lag0 = skill[(skill["lag"] == 0) & (skill["predictor"] == "ice_winter_mean")]
     assert lag0["r"].iloc[0] < -0.6 and lag0["q_value"].iloc[0] < 0.05
+
+
+def test_demo_raw_sources_tell_the_same_story():
+    from coldindex.config import IceFieldsOptions, ProfileOptions
+    from coldindex.demo import STOPPED_SHORT
+    from coldindex.io.readers import read_domain
+    from coldindex.sources import ice_table, profile_casts
+
+    assert sum(f.stat().st_size for f in SAMPLE.iterdir()) < 4_000_000  # a few MB at most
+    made = profile_casts(SAMPLE / "profiles.nc", None, ProfileOptions(), None,
+                         SAMPLE / "bathymetry.nc")
+    casts = pd.read_csv(SAMPLE / "casts.csv", dtype=str)
+    usable = pd.to_numeric(casts["bottom_c"], errors="coerce").between(-3, 30)
+    keys = ["year", "station", "date"]
+    assert set(map(tuple, made[keys].to_numpy())) == set(
+        map(tuple, casts.loc[usable & (casts["station"] != "T00-S00"), keys].to_numpy()))
+    ok = made[made["profile_flag"] == "ok"]
+    first = casts[usable].drop_duplicates(keys)
+    both = ok.merge(first, on=keys, suffixes=("", "_casts"))
+    diff = (both["bottom_c"].astype(float) - both["bottom_c_casts"].astype(float)).abs()
+    assert diff.max() < 0.01  # the profile's bottom sample is the cast's bottom value
+    short = made[made["profile_flag"] == "not_near_bottom"]
+    assert len(short) == STOPPED_SHORT and (short["gap_m"].astype(float) > 40).all()
+    assert (made["floor_source"] == "bathymetry").sum() > 0
+    assert (made["flagged_samples"] == "spike 1").sum() == 1
+    ice = ice_table([SAMPLE / "ice_fields.nc"], {"domain": read_domain(SAMPLE / "domain.geojson")},
+                    IceFieldsOptions()).table
+    mass = ice[ice["quantity"] == "mass_gt"].merge(pd.read_csv(SAMPLE / "ice.csv"),
+                                                   on=["year", "month"])
+    assert len(mass) > 250 and mass["value"].corr(mass["ice"]) > 0.9
+    assert 'profiles = "profiles.nc"' in (SAMPLE / "coldindex-raw.toml").read_text()
+
+
+@pytest.mark.slow
+def test_update_runs_from_profiles_and_ice_fields_alone(tmp_path: Path):
+    import dataclasses
+
+    from coldindex.config import load_config
+    from coldindex.pipeline import run_update
+
+    cfg = load_config(SAMPLE / "coldindex-raw.toml")
+    assert cfg.inputs.casts is None and cfg.inputs.ice is None
+    cfg = dataclasses.replace(cfg, index=dataclasses.replace(cfg.index, sims=4, param_draws=2),
+                              shifts=dataclasses.replace(cfg.shifts, boot=99))
+    run = run_update(cfg, tmp_path / "out", None)
+    rel = run.release
+    made = pd.read_csv(rel / "casts.csv", dtype=str)
+    qc = pd.read_csv(rel / "qc.csv")
+    assert (qc["flag"] == "not_near_bottom").sum() == (made["profile_flag"] ==
+                                                       "not_near_bottom").sum() > 0
+    ice = pd.read_csv(rel / "ice_fields.csv")
+    assert set(ice["quantity"]) == {"area_km2", "extent_km2", "volume_km3", "mass_gt"}
+    assert set(ice["region"]) == {"domain"}
+    skill = pd.read_csv(rel / "skill.csv")
+    lag0 = skill[(skill["lag"] == 0) & (skill["predictor"] == "ice_winter_mean")]
+    assert lag0["r"].iloc[0] < -0.5
+    prov = json.loads((rel / "provenance.json").read_text())
+    assert "profiles" in prov["inputs_sha256"] and "ice_fields[0]" in prov["inputs_sha256"]
+    assert "casts.csv" in prov["outputs_sha256"] and "ice_fields.csv" in prov["outputs_sha256"]

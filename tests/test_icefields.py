@@ -158,7 +158,7 @@ def _write_daily(path: Path, days: pd.DatetimeIndex, percent: bool, thickness: b
                  cell_methods: str = "area: mean where sea_ice") -> None:
     lon = np.arange(170.125, 190.0, 0.5)
     lat = np.arange(-65.875, -58.0, 0.5)
-    frac = np.clip(0.2 + 0.003 * (days.dayofyear.to_numpy() - 122), 0, 1)[:, None, None] * np.ones(
+    frac = np.clip(0.2 + 0.003 * (days.day_of_year.to_numpy() - 122), 0, 1)[:, None, None] * np.ones(
         (len(days), len(lat), len(lon)))
     data = {"siconc": (("time", "lat", "lon"), (frac * 100 if percent else frac).astype("f4"),
                        {"standard_name": "sea_ice_area_fraction",
@@ -194,7 +194,7 @@ def test_files_in_percent_and_fraction_agree_and_daily_fields_become_months(tmp_
     area = a[a["quantity"] == "area_km2"]
     assert area["month"].tolist() == [5, 6] and area["n_times"].tolist() == [31, 30]
     truth = _geodesic_area_km2(_region_box())
-    may = np.clip(0.2 + 0.003 * (days.dayofyear.to_numpy()[:31] - 122), 0, 1).astype("f4").mean()
+    may = np.clip(0.2 + 0.003 * (days.day_of_year.to_numpy()[:31] - 122), 0, 1).astype("f4").mean()
     assert area["value"].iloc[0] == pytest.approx(may * truth, rel=5e-4)
     assert set(a["quantity"]) == {"area_km2", "extent_km2", "volume_km3", "mass_gt"}
 
@@ -232,3 +232,41 @@ def test_concentration_without_units_is_refused(tmp_path: Path):
     ds.to_netcdf(tmp_path / "y.nc")
     with pytest.raises(InputError, match="units"):
         open_ice_fields(tmp_path / "y.nc")
+
+
+# -- the command line ----------------------------------------------------------------------
+
+def test_ice_command_writes_the_tidy_table_and_its_record(tmp_path: Path):
+    from typer.testing import CliRunner
+
+    from coldindex.cli import app
+    from tests.conftest import SAMPLE
+
+    out = tmp_path / "ice"
+    result = CliRunner().invoke(app, ["ice", str(SAMPLE / "ice_fields.nc"), "--regions",
+                                      str(SAMPLE / "domain.geojson"), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    table = pd.read_csv(out / "ice_fields.csv")
+    assert list(table.columns) == ["year", "month", "region", "quantity", "value", "n_times"]
+    record = json.loads((out / "ice_fields.json").read_text())
+    area = next(iter(record["regions"].values()))  # named by the feature's name
+    assert area["area_km2"] == pytest.approx(area["region_polygon_km2"], rel=1e-3)
+    assert record["thickness"].startswith("floe thickness")
+
+
+def test_ice_command_refuses_a_field_without_units_and_writes_nothing(tmp_path: Path):
+    from typer.testing import CliRunner
+
+    from coldindex.cli import app
+
+    days = pd.date_range("2020-05-01", periods=2, freq="D")
+    _write_daily(tmp_path / "x.nc", days, percent=False, thickness=False)
+    ds = xr.open_dataset(tmp_path / "x.nc").load()
+    del ds["siconc"].attrs["units"]
+    ds.to_netcdf(tmp_path / "y.nc")
+    out = tmp_path / "out"
+    result = CliRunner().invoke(app, ["ice", str(tmp_path / "y.nc"), "--regions",
+                                      str(_regions(tmp_path / "r.geojson")), "--out", str(out)])
+    assert result.exit_code == 2
+    assert "units" in result.output and "Traceback" not in result.output
+    assert not (out / "ice_fields.csv").exists()

@@ -253,3 +253,38 @@ def test_dsg_without_temperature_is_refused(tmp_path: Path):
     ds.to_netcdf(tmp_path / "x.nc")
     with pytest.raises(InputError, match="sea_water_temperature"):
         read_profiles(tmp_path / "x.nc")
+
+
+# -- the command line ----------------------------------------------------------------------
+
+def test_check_with_profiles_writes_qc_and_casts(tmp_path: Path):
+    from typer.testing import CliRunner
+
+    from coldindex.cli import app
+    from tests.conftest import SAMPLE
+
+    out = tmp_path / "qc"
+    result = CliRunner().invoke(app, ["check", "--profiles", str(SAMPLE / "profiles.nc"),
+                                      "--bathymetry", str(SAMPLE / "bathymetry.nc"),
+                                      "--domain", str(SAMPLE / "domain.geojson"),
+                                      "--out", str(out), "--show", "0"])
+    assert result.exit_code == 0, result.output
+    qc = pd.read_csv(out / "qc.csv")
+    made = pd.read_csv(out / "casts.csv", dtype=str)
+    assert len(qc) == len(made)
+    short = qc[qc["flag"] == "not_near_bottom"]
+    assert len(short) > 0 and short["detail"].str.contains("above the floor").all()
+    assert "not near bottom" in result.output
+
+
+def test_check_refuses_both_a_casts_file_and_profiles(tmp_path: Path):
+    from typer.testing import CliRunner
+
+    from coldindex.cli import app
+    from tests.conftest import SAMPLE
+
+    result = CliRunner().invoke(app, ["check", str(SAMPLE / "casts.csv"), "--profiles",
+                                      str(SAMPLE / "profiles.nc")])
+    assert result.exit_code == 2
+    assert "one of them, not both" in result.output
+    assert "Traceback" not in result.output
