@@ -287,6 +287,13 @@ def index(
         help="Spatial-outlier threshold on |z|, the leave-one-out standardized residual "
              "from the year's fit; flagged casts are kept out of the refit (0 = off).")
     ] = IndexOptions.outlier_z,
+    timing_drift: Annotated[bool, typer.Option(
+        help="Opt in: the survey day (from each cast's date) as an external drift, alone or "
+             "beside the bathymetry; maps and indices are adjusted to --reference-day and the "
+             "fitted rate and the adjustment are written per year.")] = False,
+    reference_day: Annotated[float, typer.Option(
+        help="Day of the survey year the indices are adjusted to with --timing-drift (0 = "
+             "the median survey day of the first run, then frozen).")] = 0.0,
     profiles: ProfilesOpt = None,
     profile_columns: ProfileColumnsOpt = None,
     max_gap_m: MaxGapOpt = 10.0,
@@ -301,7 +308,8 @@ def index(
                             seed=seed, min_casts=min_casts, min_coverage=min_coverage,
                             method=method, variogram=variogram, fit=fit,
                             param_draws=param_draws, per_year_family=per_year_family,
-                            outlier_z=outlier_z, depth_zones=depth_zones)
+                            outlier_z=outlier_z, depth_zones=depth_zones,
+                            timing_drift=timing_drift, reference_day=reference_day)
     except ConfigError as exc:
         raise ConfigError(str(exc).replace("index.", "--").replace("_", "-")) from None
     source, mapping, popts = _cast_source(casts, profiles, columns, profile_columns,

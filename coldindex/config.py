@@ -73,6 +73,13 @@ class IndexOptions:
     depth_zones
         Depth zones for ``regions.csv``, e.g. ``0-50,50-100,100-200`` [m] (needs the
         bathymetry); empty for none.
+    timing_drift
+        Opt in: the survey day (days from 1 January of the survey year, from each cast's
+        date) as an external drift, alone or beside depth; the maps and indices are then
+        predicted at ``reference_day``.
+    reference_day
+        The day the indices are adjusted to with ``timing_drift`` [day of the survey year];
+        0 = the median survey day over all casts of the first run, then frozen.
     """
 
     thresholds: tuple[float, ...] = (2.0, 0.0)
@@ -91,6 +98,8 @@ class IndexOptions:
     default_salinity: float = 34.0
     outlier_z: float = 4.0  # Common practice, no single source: |z| > 4 is rare under N(0,1)
     depth_zones: str = ""
+    timing_drift: bool = False
+    reference_day: float = 0.0
 
     def __post_init__(self) -> None:
         _check(len(self.thresholds) > 0, "index.thresholds", "at least one threshold", "[]")
@@ -122,6 +131,11 @@ class IndexOptions:
                "a practical salinity in 0..42", self.default_salinity)
         _check(self.outlier_z == 0.0 or 2.5 <= self.outlier_z <= 20.0, "index.outlier_z",
                "0 (off) or a value in 2.5..20", self.outlier_z)
+        _check(not self.timing_drift or self.method == "kriging", "index.timing_drift",
+               "false with method idw (a drift needs kriging)", self.timing_drift)
+        _check(-92.0 <= self.reference_day <= 458.0, "index.reference_day",
+               "a day of the survey year in -92..458 (0 = median survey day, frozen)",
+               self.reference_day)
         if self.depth_zones:
             from coldindex.errors import InputError
             from coldindex.regions import parse_depth_zones

@@ -155,6 +155,9 @@ class IndexResult:
         The reference station spacing used for coverage (to be frozen). [km]
     fit_method
         Variogram fit method used.
+    reference_day
+        The day the maps and indices were adjusted to with the survey-day drift
+        (to be frozen); None without it. [day of the survey year]
     regions
         The long table of region and depth-zone indices (``regions.csv``), or None.
     outliers
@@ -174,6 +177,7 @@ class IndexResult:
     clipped_share: float = 0.0
     reference_spacing_km: float = float("nan")
     fit_method: str = "reml"
+    reference_day: float | None = None
     regions: pd.DataFrame | None = None
     outliers: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(
         columns=["row", "year", "station", "z"]))
@@ -240,7 +244,8 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                     frozen_family: str | None = None,
                     progress: Callable[[int], None] | None = None,
                     frozen_spacing_km: float | None = None,
-                    regions: RegionWeights | None = None) -> IndexResult:
+                    regions: RegionWeights | None = None,
+                    frozen_reference_day: float | None = None) -> IndexResult:
     """Compute the yearly indices from quality-controlled casts.
 
     Parameters
@@ -268,6 +273,9 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         Regions and depth zones as per-cell area weights
         (:mod:`coldindex.regions`); each gets every index, from the same kriging
         and the same conditional realizations as the domain.
+    frozen_reference_day
+        Reference survey day frozen by an earlier run (``options.timing_drift``); None
+        takes ``options.reference_day`` or, when that is 0, the median survey day.
 
     Returns
     -------
@@ -286,11 +294,27 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         if np.isnan(drift_cells).any() or casts["drift"].isna().any():
             raise InputError("The bathymetry grid does not cover the whole domain and every "
                              "cast; give a bathymetry that does, or leave it out.")
+    timing = options.timing_drift and options.method == "kriging"
+    ref_day: float | None = None
+    if timing:
+        casts["day"] = survey_day(casts)
+        if casts["day"].isna().any():
+            raise InputError(f"index.timing_drift needs a date for every cast; "
+                             f"{int(casts['day'].isna().sum())} casts have none (e.g. row "
+                             f"{casts.loc[casts['day'].isna(), 'row'].iloc[0]}): add the "
+                             "dates or turn the survey-day drift off.")
+        ref_day = (float(frozen_reference_day) if frozen_reference_day is not None
+                   else float(options.reference_day) if options.reference_day != 0
+                   else float(np.median(casts["day"])))
+        day_cells = np.full(len(cell_area), ref_day)
+        drift_cells = (day_cells if drift_cells is None
+                       else np.column_stack([drift_cells, day_cells]))
+    drift_cols = [c for c in ("drift", "day") if c in casts.columns]
     by_year = _year_casts(casts)
     years = sorted(by_year)
 
     def arrays(g: pd.DataFrame) -> tuple[FloatArray, FloatArray, FloatArray | None]:
-        d = g["drift"].to_numpy(float) if "drift" in g.columns else None
+        d = g[drift_cols].to_numpy(float) if drift_cols else None
         return g[["x_km", "y_km"]].to_numpy(float), g["bottom_c"].to_numpy(float), d
 
     # Screen years first: casts and coverage decide which years get indices.
@@ -330,7 +354,7 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
             family = FAMILIES[0]
 
     with_sims = options.sims > 0 and options.method == "kriging"
-    table = indices_table(options.thresholds, with_sims=with_sims)
+    table = indices_table(options.thresholds, with_sims=with_sims, with_timing=timing)
     rows = []
     region_rows: list[dict[str, object]] = []
     region_w = regions.weights if regions is not None else None
@@ -397,6 +421,10 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                            cv_bias_c=float(np.mean(err)),
                            cv_msse=float(np.mean(err**2 / err_var)),
                            variogram=vg.describe())
+                if timing and ref_day is not None:
+                    rate = float(kr.beta[-1])  # the survey-day column is the last drift
+                    row["timing_rate_c_per_day"] = rate
+                    row["timing_adjustment_c"] = rate * (ref_day - float(g["day"].median()))
                 row["bottom_mean_c"] = area_weighted_mean(est, cell_area)
                 for t in options.thresholds:
                     row[area_column(t)] = area_below(est, sd, cell_area, t)
@@ -442,8 +470,29 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         casts = casts[~casts["row"].isin(out_df["row"])].reset_index(drop=True)
     return IndexResult(table=df, years=years, estimate=est_all, sd=sd_all, casts=casts,
                        family=family, family_scores=scores, clipped_share=clipped,
-                       reference_spacing_km=ref, fit_method=options.fit, regions=reg_df,
+                       reference_spacing_km=ref, fit_method=options.fit,
+                       reference_day=ref_day, regions=reg_df,
                        outliers=out_df, draws=draws)
+
+
+def survey_day(casts: pd.DataFrame) -> pd.Series:
+    """Day of the survey year of each cast: days from 1 January of its labelled year, plus 1.
+
+    Equal to the day of year for a date inside the labelled year; a December cast of a
+    survey labelled with the next year gets 0 or less, so a survey that crosses the new
+    year stays in order. Casts without a readable date get NaN (the day of year, when
+    only that is known). [day]
+    """
+    if "date" in casts.columns:
+        when = pd.to_datetime(casts["date"].where(casts["date"].astype(str).str.strip() != ""),
+                              errors="coerce", format="mixed")
+        start = pd.to_datetime(casts["year"].astype(int).astype(str) + "-01-01")
+        day = (when - start).dt.days.astype(float) + 1.0
+        if "doy" in casts.columns:
+            day = day.fillna(casts["doy"].astype(float))
+        return day
+    return casts["doy"].astype(float) if "doy" in casts.columns else pd.Series(
+        np.nan, index=casts.index)
 
 
 def standardized_loo(kr: Kriging) -> FloatArray:

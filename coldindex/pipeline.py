@@ -181,7 +181,8 @@ def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: 
               "family_score": ("pooled -2 log L" if result.fit_method != "wls"
                                else "pooled LOO RMSE (degC)"),
               "reference_spacing_km": (round(result.reference_spacing_km, 6)
-                                       if np.isfinite(result.reference_spacing_km) else None)}
+                                       if np.isfinite(result.reference_spacing_km) else None),
+              "reference_day": result.reference_day}
     written = [
         writers.write_csv(mark_spatial_outliers(check.qc.table, result.outliers,
                                                 options.outlier_z).drop(columns=["doy"]).reindex(
@@ -331,7 +332,8 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
     notes += region_notes
     result = compute_indices(check.qc.casts, check.domain, grid, options, bathy,
                              frozen_family=frozen_family, progress=progress,
-                             frozen_spacing_km=frozen_spacing, regions=regions)
+                             frozen_spacing_km=frozen_spacing, regions=regions,
+                             frozen_reference_day=frozen.get("reference_day"))
 
     inputs = {"profiles" if profiles else "casts": {"path": str(casts_path),
                                                     "sha256": writers.sha256_file(casts_path)}}
@@ -929,7 +931,8 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
                                                cfg.inputs.regions, "index.depth_zones")
     notes += region_notes
     res = compute_indices(check.qc.casts, check.domain, grid, opts, bathy, frozen_family=family,
-                          frozen_spacing_km=frozen_spacing, regions=regions)
+                          frozen_spacing_km=frozen_spacing, regions=regions,
+                          frozen_reference_day=frozen_prev.get("reference_day"))
     indices = res.table
     index_files, frozen = _write_index_outputs(rel, check, res, grid, opts)
     written += index_files

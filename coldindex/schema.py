@@ -671,7 +671,8 @@ MANIFEST = Table(
     ),
 )
 
-OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0]), regions_table([2.0, 0.0]),
+OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0], with_timing=True),
+                                    regions_table([2.0, 0.0]),
                                     FIELDS_VARIABLES, CLASSES,
                                     CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK,
                                     PROJECTION, EMERGENCE, COVARIATES, REVISIONS,
