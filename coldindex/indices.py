@@ -354,7 +354,9 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
             family = FAMILIES[0]
 
     with_sims = options.sims > 0 and options.method == "kriging"
-    table = indices_table(options.thresholds, with_sims=with_sims, with_timing=timing)
+    surface = _surface_years(casts, options.min_casts) if options.method == "kriging" else set()
+    table = indices_table(options.thresholds, with_sims=with_sims, with_timing=timing,
+                          with_surface=bool(surface))
     rows = []
     region_rows: list[dict[str, object]] = []
     region_w = regions.weights if regions is not None else None
@@ -440,6 +442,9 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                     if sims.note:
                         notes.append(sims.note)
                     _put_intervals(row, sims.means, sims.areas, options.thresholds)
+                if yr in surface:
+                    notes += _surface_indices(row, g, xy, vg.family, cell_xy, cell_area,
+                                              options)
                 row["note"] = "; ".join(notes)
                 if regions is not None:
                     region_rows += _region_rows(yr, regions, est, sd, options.thresholds, sims,
@@ -473,6 +478,42 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                        reference_spacing_km=ref, fit_method=options.fit,
                        reference_day=ref_day, regions=reg_df,
                        outliers=out_df, draws=draws)
+
+
+def _surface_years(casts: pd.DataFrame, min_casts: int) -> set[int]:
+    """Years with at least ``min_casts`` casts carrying a surface temperature."""
+    if "surface_c" not in casts.columns:
+        return set()
+    n = casts["surface_c"].astype(float).notna().groupby(casts["year"]).sum()
+    return {int(y) for y, k in n.items() if k >= min_casts}
+
+
+def _surface_indices(row: dict[str, object], g: pd.DataFrame, xy: FloatArray, family: str,
+                     cell_xy: FloatArray, cell_area: FloatArray, options: IndexOptions
+                     ) -> list[str]:
+    """Sea-surface mean and expected areas below/above the thresholds, into ``row``.
+
+    The surface field gets its own variogram fit (same family as the bottom's, no
+    drift: depth does not drive the surface) and ordinary kriging; the areas are
+    expected areas like the bottom's. Returns notes (a failed fit leaves blanks).
+    """
+    s = g["surface_c"].astype(float).to_numpy()
+    ok = np.isfinite(s)
+    try:
+        fit = fit_variogram(xy[ok], s[ok], family, None, method=options.fit)
+        est, var, _ = Kriging(xy[ok], s[ok], fit.variogram).predict(cell_xy)
+    except (TooFewDataError, np.linalg.LinAlgError):
+        return ["no surface indices: the surface variogram could not be fitted"]
+    assert var is not None
+    sd = np.sqrt(var)
+    total = float(np.sum(cell_area))
+    row["surface_mean_c"] = area_weighted_mean(est, cell_area)
+    for t in options.thresholds:
+        lab = area_column(t).removeprefix("below_")
+        below = area_below(est, sd, cell_area, t)
+        row[f"surface_below_{lab}"] = below
+        row[f"surface_above_{lab}"] = total - below
+    return []
 
 
 def survey_day(casts: pd.DataFrame) -> pd.Series:

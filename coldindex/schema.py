@@ -277,7 +277,7 @@ def area_column(threshold: float) -> str:
 
 
 def indices_table(thresholds: Sequence[float], with_sims: bool = True,
-                  with_timing: bool = False) -> Table:
+                  with_timing: bool = False, with_surface: bool = False) -> Table:
     """Layout of ``indices.csv`` for the given thresholds.
 
     Parameters
@@ -288,6 +288,8 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True,
         Whether the simulation summaries (``_sd``, ``_lo90``, ``_hi90``) are present.
     with_timing
         Whether the survey-day drift columns are present (``index.timing_drift``).
+    with_surface
+        Whether the surface-temperature columns are present (casts with ``surface_c``).
 
     Returns
     -------
@@ -336,6 +338,18 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True,
                "matches the data at the casts' spacing; it does not check the areas' "
                "intervals; blank for IDW).", "float"),
     ]
+    if with_surface:
+        cols.append(Column("surface_mean_c", "degC", "Area-weighted mean of the kriged "
+                           "sea-surface temperature over the domain (casts with surface_c; "
+                           "its own variogram fit, no drift)."))
+        for t in thresholds:
+            tl = np.format_float_positional(float(t), trim="-")
+            lab = threshold_label(t)
+            cols.append(Column(f"surface_below_{lab}c_km2", "km2", "Expected area with "
+                               f"sea-surface temperature below {tl} °C."))
+            cols.append(Column(f"surface_above_{lab}c_km2", "km2", "Expected area with "
+                               f"sea-surface temperature above {tl} °C (the domain area minus "
+                               "the area below)."))
     if with_timing:
         cols += [
             Column("timing_rate_c_per_day", "degC/day", "Fitted change of bottom temperature "
@@ -359,6 +373,7 @@ def indices_table(thresholds: Sequence[float], with_sims: bool = True,
 
 #: Columns of indices.csv that describe the whole year's casts and fit, not a region.
 _YEAR_ONLY = ("n_casts", "median_doy", "coverage", "cv_rmse_c", "cv_bias_c", "cv_msse",
+              "timing_rate_c_per_day", "timing_adjustment_c",
               "simulation", "variogram")
 
 
@@ -671,7 +686,8 @@ MANIFEST = Table(
     ),
 )
 
-OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0], with_timing=True),
+OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0], with_timing=True,
+                                                  with_surface=True),
                                     regions_table([2.0, 0.0]),
                                     FIELDS_VARIABLES, CLASSES,
                                     CUTS, SHIFTS, REGIMES, SKILL, HINDCAST, OUTLOOK,

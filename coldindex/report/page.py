@@ -126,6 +126,11 @@ def column_label(col: str) -> str:
         return "mean bottom temperature (°C)"
     if col == "surface_mean_c":
         return "mean surface temperature (°C)"
+    if col.startswith("surface_") and col.endswith("c_km2"):
+        t = threshold_from_column("below_" + col.split("_", 2)[2])
+        side = col.split("_")[1]
+        if t is not None:
+            return f"sea-surface area {side} {t:g} °C (km²)"
     t = threshold_from_column(col)
     if t is not None and col.startswith("below_"):
         return f"area below {t:g} °C (km²)"
