@@ -270,3 +270,39 @@ def test_ice_command_refuses_a_field_without_units_and_writes_nothing(tmp_path: 
     assert result.exit_code == 2
     assert "units" in result.output and "Traceback" not in result.output
     assert not (out / "ice_fields.csv").exists()
+
+
+def test_curvilinear_file_with_2d_lat_lon_gives_the_area_of_its_1d_twin(tmp_path: Path):
+    lon = np.arange(170.125, 190.0, 0.25)
+    lat = np.arange(-65.875, -58.0, 0.25)
+    LO, LA = np.meshgrid(lon, lat)
+    days = pd.date_range("2020-07-01", periods=2, freq="D")
+    ds = xr.Dataset(
+        {"siconc": (("time", "j", "i"), np.full((2, len(lat), len(lon)), 0.5),
+                    {"standard_name": "sea_ice_area_fraction", "units": "1"})},
+        coords={"time": days,
+                "nav_lat": (("j", "i"), LA, {"standard_name": "latitude",
+                                              "units": "degrees_north"}),
+                "nav_lon": (("j", "i"), (LO + 180.0) % 360.0 - 180.0,
+                            {"standard_name": "longitude", "units": "degrees_east"})})
+    ds.to_netcdf(tmp_path / "curv.nc")
+    regions = read_regions(_regions(tmp_path / "r.geojson"))
+    curv = ice_table([tmp_path / "curv.nc"], regions, IceFieldsOptions()).table
+    area = curv[curv["quantity"] == "area_km2"]["value"].iloc[0]
+    truth = _geodesic_area_km2(_region_box())
+    assert area == pytest.approx(0.5 * truth, rel=1e-3)
+
+
+def test_series_for_skill_picks_quantity_and_region():
+    from coldindex.errors import ConfigError
+    from coldindex.icefields import series_for_skill
+
+    t = pd.DataFrame({"year": [2020, 2020, 2020], "month": [5, 5, 6],
+                      "region": ["a", "b", "a"], "quantity": ["area_km2"] * 3,
+                      "value": [1.0, 2.0, 3.0], "n_times": [1, 1, 1]})
+    s = series_for_skill(t, "area_km2", "a")
+    assert s["ice"].tolist() == [1.0, 3.0] and list(s.columns) == ["year", "month", "ice"]
+    with pytest.raises(ConfigError, match="ice_fields.region"):
+        series_for_skill(t, "area_km2", "")
+    with pytest.raises(ConfigError, match="ice_fields.quantity"):
+        series_for_skill(t, "mass_gt", "a")

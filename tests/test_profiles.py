@@ -288,3 +288,23 @@ def test_check_refuses_both_a_casts_file_and_profiles(tmp_path: Path):
     assert result.exit_code == 2
     assert "one of them, not both" in result.output
     assert "Traceback" not in result.output
+
+
+def test_long_table_row_order_changes_nothing(tmp_path: Path):
+    rng = np.random.default_rng(5)
+    rows = []
+    for cast, (d, t) in PROFILES.items():
+        rows += [(cast, "2020-01-20", -62.0, 179.0, dd, tt, 100.0) for dd, tt in zip(d, t,
+                                                                                 strict=True)]
+    rows.append(("c1", "2020-01-20", -62.0, 179.0, 40.0, 0.7, 100.0))  # a repeated depth
+    df = pd.DataFrame(rows, columns=["cast", "time", "lat", "lon", "depth_m", "temperature_c",
+                                     "bottom_depth_m"])
+    outs = []
+    for k in range(3):
+        path = tmp_path / f"p{k}.csv"
+        df.iloc[rng.permutation(len(df))].to_csv(path, index=False)
+        data = read_profiles(path)
+        outs.append(bottom_values(data.samples, data.casts, ProfileOptions(max_gap_m=50)).casts)
+    for other in outs[1:]:
+        pd.testing.assert_frame_equal(outs[0], other)
+    assert outs[0].set_index("cast").loc["c1", "flagged_samples"] == "non_monotonic 1"

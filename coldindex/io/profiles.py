@@ -13,7 +13,8 @@ optionally ``sea_water_practical_salinity`` and ``sea_floor_depth_below_sea_surf
 
 Long tables (CSV or Parquet) hold one sample a row; see
 :data:`coldindex.schema.PROFILES`. Their ``pressure_dbar`` is sea pressure (as
-CTD software writes it).
+CTD software writes it). A table's row order is not taken as the order along the
+profile: samples are sorted by depth (or pressure) within each cast.
 """
 
 from __future__ import annotations
@@ -126,12 +127,19 @@ def _read_long_table(path: Path, mapping: Mapping[str, str]) -> ProfileData:
     casts = firsts.drop(columns="row").reset_index()
     samples = pd.DataFrame({
         "cast": cast,
-        "sample": raw["row"].to_numpy() - 1,
         "temperature_c": num["temperature_c"],
         "depth_m": num.get("depth_m", np.nan),
         "pressure_dbar": num.get("pressure_dbar", np.nan),
         "salinity": num.get("salinity", np.nan),
     })
+    # A table row order is no acquisition order: samples go down the profile by depth (or
+    # pressure), ties by their values, so reordering rows changes nothing; a repeated depth
+    # is then not deeper than the one before and is flagged non_monotonic.
+    vertical_key = samples["depth_m"].fillna(samples["pressure_dbar"])
+    order = samples.assign(_v=vertical_key).sort_values(
+        ["cast", "_v", "temperature_c", "salinity"], kind="stable", na_position="last")
+    samples = order.drop(columns="_v").reset_index(drop=True)
+    samples.insert(1, "sample", samples.groupby("cast").cumcount().to_numpy())
     vertical = "depth" if has_depth else "sea pressure"
     return ProfileData(samples=samples, casts=casts, vertical=vertical)
 
