@@ -190,6 +190,10 @@ def check(
         help="Profiles: bathymetry NetCDF for casts without a recorded bottom depth.")] = None,
     max_gap_m: MaxGapOpt = 10.0,
     average_m: AverageOpt = 0.0,
+    outlier_z: Annotated[float, typer.Option(
+        help="Spatial-outlier threshold on |z|, the leave-one-out standardized residual from "
+             "each year's variogram fit (years with --min-casts casts; 0 = off).")
+    ] = IndexOptions.outlier_z,
 ) -> None:
     """Read casts (or profiles), run quality control, and print a per-year summary."""
     from coldindex.io.writers import plan_outputs, write_csv
@@ -200,7 +204,14 @@ def check(
     casts = source
     names = ("qc.csv",) + ((PROFILE_CASTS_NAME,) if popts else ())
     outputs = plan_outputs(out, "check", names, (casts, domain, bathymetry)) if out else None
-    run = run_check(casts, mapping, domain, profiles=popts, bathymetry_path=bathymetry)
+    from coldindex.config import ConfigError
+
+    try:
+        opts = IndexOptions(outlier_z=outlier_z)
+    except ConfigError as exc:
+        raise ConfigError(str(exc).replace("index.", "--").replace("_", "-")) from None
+    run = run_check(casts, mapping, domain, opts, profiles=popts, bathymetry_path=bathymetry,
+                    outlier_min_casts=min_casts)
     qc = run.qc
     counts = qc.counts_by_year()
     reasons = [c for c in counts.columns if c not in ("ok", "median_doy")]

@@ -536,6 +536,60 @@ def survey_day(casts: pd.DataFrame) -> pd.Series:
         np.nan, index=casts.index)
 
 
+def find_spatial_outliers(casts: pd.DataFrame, z_max: float, min_casts: int,
+                          family: str = "exponential", method: str = "reml") -> pd.DataFrame:
+    """Spatial outliers of every year with enough casts, from one variogram fit a year.
+
+    Positions are projected to an Albers equal-area plane fitted to the casts, so no
+    domain is needed (``coldindex check``). Years that cannot be fitted are skipped.
+
+    Parameters
+    ----------
+    casts
+        Quality-controlled casts (``row``, ``year``, ``station``, ``lat``, ``lon``,
+        ``bottom_c``).
+    z_max
+        Threshold on the size of the leave-one-out standardized residual.
+    min_casts
+        Fewest casts for a year to be checked.
+    family, method
+        Variogram family and fit method.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``row``, ``year``, ``station``, ``z`` of the flagged casts.
+    """
+    import pyproj
+
+    from coldindex.domain import albers_for, central_lon, unwrap_lon
+
+    cols = ["row", "year", "station", "z"]
+    if casts.empty or not z_max > 0:
+        return pd.DataFrame(columns=cols)
+    lon0 = central_lon(casts["lon"].to_numpy(float))
+    lat = casts["lat"].to_numpy(float)
+    crs = albers_for(lon0, float(lat.min()), float(lat.max()))
+    fwd = pyproj.Transformer.from_crs(crs.geodetic_crs, crs, always_xy=True)
+    x, y = fwd.transform(unwrap_lon(casts["lon"].to_numpy(float), lon0), lat)
+    xy_all = np.column_stack([np.asarray(x) / 1000.0, np.asarray(y) / 1000.0])
+    found = []
+    for _, g in casts.groupby("year", sort=True):
+        if len(g) < min_casts:
+            continue
+        idx = g.index.to_numpy()
+        xy, z = xy_all[casts.index.get_indexer(idx)], g["bottom_c"].to_numpy(float)
+        try:
+            kr = Kriging(xy, z, fit_variogram(xy, z, family, None, method=method).variogram)
+            zs = standardized_loo(kr)
+        except (TooFewDataError, np.linalg.LinAlgError):
+            continue
+        bad = np.abs(zs) > z_max
+        if bad.any():
+            found.append(g.loc[bad, ["row", "year", "station"]].assign(z=zs[bad]))
+    return pd.concat(found, ignore_index=True) if found else pd.DataFrame(columns=cols)
+
+
 def standardized_loo(kr: Kriging) -> FloatArray:
     """Leave-one-out standardized residuals of the casts. [1]
 

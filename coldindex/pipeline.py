@@ -204,7 +204,8 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
               domain_path: Path | None = None, options: IndexOptions | None = None,
               previous_out: Path | None = None, derive: bool = False, *,
               profiles: ProfileOptions | None = None,
-              bathymetry_path: Path | None = None) -> CheckRun:
+              bathymetry_path: Path | None = None,
+              outlier_min_casts: int = 0) -> CheckRun:
     """Read casts, pick the domain (given, frozen, derived or none) and run QC.
 
     Parameters
@@ -227,6 +228,12 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
         into casts by :func:`coldindex.sources.profile_casts` with these settings.
     bathymetry_path
         Sea-floor depth for profiles without a recorded bottom depth.
+    outlier_min_casts
+        When > 0 (``coldindex check``), years with at least this many casts also get the
+        spatial-outlier check (``options.outlier_z``: one variogram fit a year, the
+        family of ``options.variogram`` or exponential for ``auto``); flagged casts are
+        marked ``spatial_outlier`` in the QC table. ``index`` and ``update`` run the
+        check inside the index computation instead (fit, flag, refit).
 
     Returns
     -------
@@ -264,6 +271,16 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
         from coldindex.profiles import apply_profile_flags
 
         qc = apply_profile_flags(qc, profile_table)
+    if outlier_min_casts > 0 and opts.outlier_z > 0 and not qc.casts.empty:
+        from coldindex.indices import find_spatial_outliers
+
+        family = opts.variogram if opts.variogram != "auto" else "exponential"
+        out = find_spatial_outliers(qc.casts, opts.outlier_z, outlier_min_casts, family,
+                                    opts.fit)
+        if len(out):
+            qc = QCResult(table=mark_spatial_outliers(qc.table, out, opts.outlier_z),
+                          casts=qc.casts[~qc.casts["row"].isin(out["row"])]
+                          .reset_index(drop=True))
     return CheckRun(qc=qc, domain=domain, domain_source=source, profile_casts=profile_table)
 
 

@@ -246,3 +246,23 @@ def test_index_cli_refuses_overlapping_regions_and_zones_without_depth(tmp_path)
     r = CliRunner().invoke(app, [*base, "--depth-zones", "0-50"])
     assert r.exit_code != 0 and "--depth-zones needs the bathymetry" in r.output
     assert not (tmp_path / "out" / "indices.csv").exists()
+
+
+def test_check_lists_the_planted_spatial_outlier(tmp_path):
+    from typer.testing import CliRunner
+
+    from coldindex.cli import app
+
+    df = synthetic_casts(years=(2001, 2002), n_side=9)
+    df["bottom_c"] = (df["bottom_c"] + np.random.default_rng(5).normal(0, 0.2, len(df))).round(3)
+    df.loc[40, "bottom_c"] += 2.5  # station S44 of 2001
+    casts = tmp_path / "casts.csv"
+    df.to_csv(casts, index=False)
+    r = CliRunner().invoke(app, ["check", str(casts), "--min-casts", "20", "--out",
+                                 str(tmp_path / "qc")])
+    assert r.exit_code == 0, r.output
+    assert "spatial_outlier" in r.output
+    qc = pd.read_csv(tmp_path / "qc" / "qc.csv")
+    assert qc.loc[qc["flag"] == "spatial_outlier", "row"].tolist() == [41]
+    r = CliRunner().invoke(app, ["check", str(casts), "--min-casts", "20", "--outlier-z", "0"])
+    assert r.exit_code == 0 and "spatial_outlier" not in r.output
