@@ -568,13 +568,19 @@ def skill(
         "--ice-columns", help="Map ice headers: ours=theirs,...")] = None,
     target_columns: Annotated[str | None, typer.Option(
         "--target-columns", help="Map target headers: ours=theirs,...")] = None,
+    ice_quantity: Annotated[str, typer.Option(
+        help="With an ice_fields.csv from coldindex ice: the quantity (area_km2, extent_km2, "
+             "volume_km3, mass_gt).")] = "mass_gt",
+    ice_region: Annotated[str, typer.Option(
+        help="With an ice_fields.csv: the region (empty: the only one).")] = "",
 ) -> None:
     """Lagged skill of winter ice for the target, the persistence baseline, hindcast, outlook."""
     from coldindex import classify as cl
     from coldindex import skill as sk
-    from coldindex.config import check_lags, check_months
+    from coldindex.config import ConfigError, check_lags, check_months
     from coldindex.errors import InputError
-    from coldindex.io.readers import read_ice, read_series
+    from coldindex.io.icefields import read_ice_series
+    from coldindex.io.readers import read_series
     from coldindex.io.writers import plan_outputs, write_csv, write_figure, write_json
     from coldindex.report.figures import hindcast_figure, skill_figure
 
@@ -586,8 +592,12 @@ def skill(
                                           "skill.png", "hindcast.png"), (ice, target, cuts))
     if cuts is not None:
         _cuts_for(cuts, value)  # a bad cuts file is refused before any work
-    ice_df = sk.ice_frame(read_ice(ice, parse_column_map(ice_columns, "--ice-columns")),
-                          str(ice))
+    try:
+        ice_raw = read_ice_series(ice, parse_column_map(ice_columns, "--ice-columns"),
+                                  ice_quantity, ice_region)
+    except ConfigError as exc:
+        raise ConfigError(str(exc).replace("ice_fields.", "--ice-")) from None
+    ice_df = sk.ice_frame(ice_raw, str(ice))
     series = read_series(target, value, parse_column_map(target_columns, "--target-columns"),
                          "--target-columns")
     tgt = pd.Series(series["value"].to_numpy(), index=series["year"].to_numpy()).dropna()

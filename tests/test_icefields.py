@@ -158,8 +158,8 @@ def _write_daily(path: Path, days: pd.DatetimeIndex, percent: bool, thickness: b
                  cell_methods: str = "area: mean where sea_ice") -> None:
     lon = np.arange(170.125, 190.0, 0.5)
     lat = np.arange(-65.875, -58.0, 0.5)
-    frac = np.clip(0.2 + 0.003 * (days.day_of_year.to_numpy() - 122), 0, 1)[:, None, None] * np.ones(
-        (len(days), len(lat), len(lon)))
+    daily = np.clip(0.2 + 0.003 * (days.day_of_year.to_numpy() - 122), 0, 1)
+    frac = daily[:, None, None] * np.ones((len(days), len(lat), len(lon)))
     data = {"siconc": (("time", "lat", "lon"), (frac * 100 if percent else frac).astype("f4"),
                        {"standard_name": "sea_ice_area_fraction",
                         "units": "%" if percent else "1"})}
@@ -306,3 +306,33 @@ def test_series_for_skill_picks_quantity_and_region():
         series_for_skill(t, "area_km2", "")
     with pytest.raises(ConfigError, match="ice_fields.quantity"):
         series_for_skill(t, "mass_gt", "a")
+
+
+def test_skill_command_reads_the_tidy_ice_table(tmp_path: Path):
+    from typer.testing import CliRunner
+
+    from coldindex.cli import app
+    from coldindex.demo import make_scenario
+    from tests.conftest import SAMPLE
+
+    runner = CliRunner()
+    ice_out = tmp_path / "ice"
+    r = runner.invoke(app, ["ice", str(SAMPLE / "ice_fields.nc"), "--regions",
+                            str(SAMPLE / "domain.geojson"), "--out", str(ice_out)])
+    assert r.exit_code == 0, r.output
+    winter = make_scenario().winter_anomaly  # the anomaly that drove each survey
+    noise = np.random.default_rng(2).normal(0, 0.3, len(winter))
+    target = pd.DataFrame({"year": list(winter), "bottom_mean_c":
+                           [-1.5 * w + e for w, e in zip(winter.values(), noise, strict=True)]})
+    target = target[(target["year"] >= 1991) & (target["year"] <= 2026)]
+    target.to_csv(tmp_path / "target.csv", index=False)
+    args = ["skill", "--ice", str(ice_out / "ice_fields.csv"), "--target",
+            str(tmp_path / "target.csv"), "--value", "bottom_mean_c", "--months", "5-10",
+            "--survey-month", "1", "--lags", "0-1", "--out", str(tmp_path / "skill")]
+    r = runner.invoke(app, [*args, "--ice-quantity", "volume_km3"])
+    assert r.exit_code == 0, r.output
+    skill = pd.read_csv(tmp_path / "skill" / "skill.csv")
+    lag0 = skill[(skill["lag"] == 0) & (skill["predictor"] == "ice_winter_mean")]
+    assert lag0["r"].iloc[0] < -0.6
+    bad = runner.invoke(app, [*args, "--ice-quantity", "depth_m"])
+    assert bad.exit_code == 2 and "--ice-quantity" in bad.output

@@ -16,6 +16,7 @@ import json
 import re
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyproj
@@ -330,3 +331,38 @@ def read_regions(path: Path) -> dict[str, Domain]:
             raise InputError(f"{path}, region {name!r} is not a usable polygon "
                              f"({type(exc).__name__}).") from None
     return out
+
+
+def read_ice_series(path: Path, mapping: dict[str, str] | None = None,
+                    quantity: str = "mass_gt", region: str = "") -> Any:
+    """Read a monthly ice file for the skill stage: ``year, month, ice`` or the tidy table.
+
+    A tidy ``ice_fields.csv`` (columns ``quantity`` and ``region``, as ``coldindex ice``
+    writes it) gives the series of ``quantity`` in ``region`` (empty: the only region);
+    any other file is read as the monthly ice table
+    (:func:`coldindex.io.readers.read_ice`).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Strings ``row``, ``year``, ``month``, ``ice``, as :func:`coldindex.io.readers.read_ice`.
+    """
+    import pandas as pd
+
+    from coldindex.icefields import series_for_skill
+    from coldindex.io.readers import read_ice, read_text_table
+    from coldindex.schema import numeric_column
+
+    if path.suffix.lower() not in (".parquet", ".pq"):
+        head = read_text_table(path)
+        if {"quantity", "region", "value", "year", "month"} <= set(head.columns):
+            head.insert(0, "row", np.arange(1, len(head) + 1))
+            num = head.assign(year=numeric_column(head, "year", str(path), whole=True),
+                              month=numeric_column(head, "month", str(path), whole=True),
+                              value=numeric_column(head, "value", str(path), allow_blank=True))
+            s = series_for_skill(num, quantity, region)
+            return pd.DataFrame({"row": np.arange(1, len(s) + 1),
+                                 "year": s["year"].astype(str), "month": s["month"].astype(str),
+                                 "ice": [("" if not np.isfinite(v) else repr(float(v)))
+                                         for v in s["ice"]]})
+    return read_ice(path, mapping)
