@@ -308,3 +308,41 @@ def test_long_table_row_order_changes_nothing(tmp_path: Path):
     for other in outs[1:]:
         pd.testing.assert_frame_equal(outs[0], other)
     assert outs[0].set_index("cast").loc["c1", "flagged_samples"] == "non_monotonic 1"
+
+
+def test_a_file_that_is_not_netcdf_is_refused(tmp_path: Path):
+    bad = tmp_path / "p.nc"
+    bad.write_bytes(b"CDF\x01 truncated")
+    with pytest.raises(InputError, match="cannot be read as NetCDF"):
+        read_profiles(bad)
+
+
+def test_time_and_position_found_without_standard_names(tmp_path: Path):
+    ds = _ragged("contiguous")
+    for v in ("lat", "lon", "time"):
+        ds[v].attrs.pop("standard_name")
+    ds["time"].attrs["axis"] = "T"
+    ds.to_netcdf(tmp_path / "x.nc")
+    data = read_profiles(tmp_path / "x.nc")
+    assert data.casts["lat"].tolist() == [-62.0, -62.5, -61.8]
+    assert data.casts["time"].dt.day.tolist() == [20, 21, 22]
+
+
+def test_update_takes_casts_or_profiles_not_both(tmp_path: Path):
+    from coldindex.config import config_from_mapping
+    from coldindex.errors import ConfigError
+    from coldindex.pipeline import run_update
+    from tests.conftest import SAMPLE
+
+    both = config_from_mapping({"inputs": {"casts": "casts.csv", "profiles": "profiles.nc"}},
+                               base=SAMPLE)
+    with pytest.raises(ConfigError, match="not both"):
+        run_update(both, tmp_path / "out")
+    neither = config_from_mapping({"inputs": {}}, base=SAMPLE)
+    with pytest.raises(ConfigError, match="inputs.casts or inputs.profiles"):
+        run_update(neither, tmp_path / "out")
+    ice_twice = config_from_mapping({"inputs": {"casts": "casts.csv", "ice": "ice.csv",
+                                                "ice_fields": ["ice_fields.nc"]}}, base=SAMPLE)
+    with pytest.raises(ConfigError, match="inputs.ice and inputs.ice_fields"):
+        run_update(ice_twice, tmp_path / "out")
+    assert not (tmp_path / "out").exists()

@@ -187,9 +187,20 @@ def _values(ds: xr.Dataset, name: str, kind: str, path: Path) -> xr.DataArray:
     return out
 
 
+FALLBACKS = {"latitude": ("units", ("degrees_north", "degree_north")),
+             "longitude": ("units", ("degrees_east", "degree_east")),
+             "time": ("axis", ("T",))}
+
+
 def _per_profile(ds: xr.Dataset, standard: tuple[str, ...], path: Path,
                  required: bool, what: str) -> xr.DataArray | None:
     name = _by_standard_name(ds, standard)
+    if name is None and standard[0] in FALLBACKS:  # no standard_name: units or axis, or name
+        attr, values = FALLBACKS[standard[0]]
+        name = next((str(n) for n, v in ds.variables.items()
+                     if str(v.attrs.get(attr, "")).strip() in values), None)
+        if name is None and standard[0] in ds.variables:
+            name = standard[0]
     if name is None:
         if required:
             raise InputError(f"{path} has no variable with standard_name {standard[0]!r} "
@@ -286,10 +297,8 @@ def _dsg_to_frames(ds: xr.Dataset, path: Path) -> ProfileData:
             raise InputError(f"{path}: the samples lie along dimension {obs!r} but no "
                              "variable has sample_dimension or instance_dimension; write a "
                              "CF ragged array (see CF conventions, chapter 9).")
-        order = np.zeros(temp.size, dtype=int)
-        for k in np.unique(prof):  # order along each profile as stored
-            m = prof == k
-            order[m] = np.arange(int(m.sum()))
+        # order along each profile as stored
+        order = pd.Series(prof).groupby(prof).cumcount().to_numpy()
         t_vals = temp.values
         v_vals = np.broadcast_to(vert.values, temp.shape) if vert.dims == temp.dims else None
         if v_vals is None:
