@@ -336,3 +336,24 @@ def test_skill_command_reads_the_tidy_ice_table(tmp_path: Path):
     assert lag0["r"].iloc[0] < -0.6
     bad = runner.invoke(app, [*args, "--ice-quantity", "depth_m"])
     assert bad.exit_code == 2 and "--ice-quantity" in bad.output
+
+
+def test_percent_labelled_as_fraction_is_refused(tmp_path: Path):
+    days = pd.date_range("2020-05-01", periods=2, freq="D")
+    _write_daily(tmp_path / "x.nc", days, percent=True, thickness=False)
+    ds = xr.open_dataset(tmp_path / "x.nc").load()
+    ds["siconc"].attrs["units"] = "1"
+    ds.to_netcdf(tmp_path / "y.nc")
+    with pytest.raises(InputError, match="like percent"):
+        open_ice_fields(tmp_path / "y.nc")
+
+
+def test_ice_settings_are_validated_with_their_key():
+    from coldindex.errors import ConfigError
+
+    with pytest.raises(ConfigError, match="ice_fields.extent_threshold"):
+        IceFieldsOptions(extent_threshold=15.0)
+    with pytest.raises(ConfigError, match="ice_fields.quantity"):
+        IceFieldsOptions(quantity="mass_kg")
+    with pytest.raises(ConfigError, match="ice_fields.thickness"):
+        IceFieldsOptions(thickness="mean")

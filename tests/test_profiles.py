@@ -346,3 +346,12 @@ def test_update_takes_casts_or_profiles_not_both(tmp_path: Path):
     with pytest.raises(ConfigError, match="inputs.ice and inputs.ice_fields"):
         run_update(ice_twice, tmp_path / "out")
     assert not (tmp_path / "out").exists()
+
+
+def test_profile_settings_are_validated_with_their_key():
+    from coldindex.errors import ConfigError
+
+    with pytest.raises(ConfigError, match="profiles.max_gap_m"):
+        ProfileOptions(max_gap_m=-1.0)
+    with pytest.raises(ConfigError, match="profiles.average_m"):
+        ProfileOptions(average_m=500.0)

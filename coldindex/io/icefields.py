@@ -177,6 +177,14 @@ def _interpret(ds: xr.Dataset, path: Path, thickness_mode: str) -> IceFieldFile:
         tdim = str(conc.dims[0])
     conc = conc.transpose(tdim, ydim, xdim)
     years, months = _year_month(conc[tdim], path)
+    if scale == 1.0:  # a percent field labelled as a fraction would count as no ice at all
+        with np.errstate(invalid="ignore"):
+            first = np.asarray(conc.isel({tdim: 0}).values, dtype=float)
+            top = float(np.nanmax(first)) if np.isfinite(first).any() else 0.0
+        if 1.5 < top <= 100.5:
+            raise InputError(f"{path}: {c_name!r} has units {units!r} (a fraction) but values "
+                             f"up to {top:g}, like percent; set its units to '%' so the "
+                             "concentration is read right.")
     conc = (conc.chunk({tdim: TIME_CHUNK, ydim: -1, xdim: -1}) * scale).rename(
         {tdim: "time"})
 
