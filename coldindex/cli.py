@@ -158,6 +158,9 @@ def _cast_source(casts: Path | None, profiles: Path | None, columns: str | None,
         raise ConfigError("Give a casts file or --profiles FILE (one of them, not both).")
     if profiles is None:
         assert casts is not None
+        if casts.suffix.lower() in (".nc", ".nc4", ".cdf", ".netcdf"):
+            raise ConfigError(f"{casts} is NetCDF, not a casts table; give profiles with "
+                              f"--profiles {casts}.")
         return casts, parse_column_map(columns), None
     try:
         popts = ProfileOptions(max_gap_m=max_gap_m, average_m=average_m)
