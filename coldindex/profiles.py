@@ -316,8 +316,9 @@ def bottom_values(samples: pd.DataFrame, casts: pd.DataFrame, options: ProfileOp
         "sample": ["" if not np.isfinite(v) else str(int(v)) for v in sample_pos],
     }, index=c.index)
     time = pd.to_datetime(c["time"])
-    year = (c["year"].astype(float) if "year" in c and c["year"].notna().all()
-            else time.dt.year.astype(float))
+    year = time.dt.year.astype(float)  # the survey year: given per cast, else the calendar year
+    if "year" in c:
+        year = c["year"].astype(float).fillna(year)
     table = pd.DataFrame({
         "year": [_fmt(v, 0) for v in year],
         "station": c["station"].fillna("").astype(str) if "station" in c else "",

@@ -355,3 +355,12 @@ def test_profile_settings_are_validated_with_their_key():
         ProfileOptions(max_gap_m=-1.0)
     with pytest.raises(ConfigError, match="profiles.average_m"):
         ProfileOptions(average_m=500.0)
+
+
+def test_survey_year_given_per_cast_else_the_calendar_year():
+    s = pd.concat([_samples("A", [5.0, 95.0], [1.0, 0.2]), _samples("B", [5.0, 95.0], [1.0, 0.2])])
+    casts = _casts(["A", "B"], [100.0, 100.0])
+    casts["time"] = pd.to_datetime(["2019-12-28", "2020-01-03"])
+    casts["year"] = [2020.0, np.nan]  # a survey straddling the new year, labelled 2020
+    res = bottom_values(s, casts, ProfileOptions()).casts
+    assert res["year"].tolist() == ["2020", "2020"]
