@@ -108,6 +108,7 @@ def ice_table(paths: Sequence[Path], regions: Mapping[str, Domain],
     pieces: list[tuple[np.ndarray, np.ndarray, xr.Dataset]] = []
     floe: set[bool] = set()
     has_thickness: set[bool] = set()
+    seen: dict[object, Path] = {}
     for p in sorted(paths, key=str):
         f = open_ice_fields(p, options.thickness)
         try:
@@ -130,6 +131,12 @@ def ice_table(paths: Sequence[Path], regions: Mapping[str, Domain],
                                  extent_threshold=options.extent_threshold,
                                  density_kg_m3=options.density_kg_m3).compute()
             pieces.append((f.years, f.months, sums))
+            for stamp in np.asarray(f.concentration["time"].values).tolist():
+                if stamp in seen:
+                    raise InputError(f"{p} and {seen[stamp]} both hold the time step {stamp}; "
+                                     "give each time step once (overlapping files would "
+                                     "count it twice).")
+                seen[stamp] = p
         finally:
             f.close()
     if len(has_thickness) > 1:

@@ -357,3 +357,12 @@ def test_ice_settings_are_validated_with_their_key():
         IceFieldsOptions(quantity="mass_kg")
     with pytest.raises(ConfigError, match="ice_fields.thickness"):
         IceFieldsOptions(thickness="mean")
+
+
+def test_overlapping_files_are_refused(tmp_path: Path):
+    days = pd.date_range("2020-05-01", "2020-05-20", freq="D")
+    _write_daily(tmp_path / "a.nc", days[:12], percent=False)
+    _write_daily(tmp_path / "b.nc", days[10:], percent=False)
+    regions = read_regions(_regions(tmp_path / "r.geojson"))
+    with pytest.raises(InputError, match="both hold the time step"):
+        ice_table([tmp_path / "a.nc", tmp_path / "b.nc"], regions, IceFieldsOptions())
