@@ -27,7 +27,9 @@ from coldindex.errors import ColdindexError
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Cold-pool and bottom-temperature indicators from survey casts. "
                        "Decision support: defer to the responsible agency's reviewed "
-                       "assessment.")
+                       "assessment. Methods, outputs and every command are documented in "
+                       "docs/methods.md, docs/outputs.md and docs/cli.md of the source "
+                       "distribution.")
 
 
 class PlainConsole(Console):

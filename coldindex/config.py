@@ -616,6 +616,8 @@ ice = "ice.csv"                      # optional: monthly ice (year, month, ice) 
 # ice_fields = ["ice_fields.nc"]     # instead of ice: gridded ice concentration (and thickness)
 # ice_regions = "regions.geojson"    # regions of the ice series (default: the domain)
 trajectories = ["trajectories.csv"]  # optional: model trajectories for the projection stage
+# regions = "strata.geojson"         # optional: named regions (no overlaps) -> regions.csv
+# coastline = "coast.geojson"        # optional: coastline lines or polygons drawn on the maps
 
 [columns]
 # Map your casts headers to ours: ours = "theirs", e.g. bottom_c = "TempBottom"
@@ -651,6 +653,10 @@ method = "kriging"        # kriging or idw
 variogram = "auto"        # exponential, spherical, matern, gaussian, or auto (then frozen)
 fit = "reml"              # variogram fit: reml, ml or wls
 param_draws = 20          # variogram parameter draws a year for the simulations (0 = off)
+outlier_z = 4.0           # spatial-outlier threshold on the leave-one-out |z| (0 = off)
+depth_zones = ""          # e.g. "0-50,50-100,100-200" (m, from the bathymetry) -> regions.csv
+timing_drift = false      # survey day as an external drift; indices at reference_day
+reference_day = 0.0       # day of the survey year (0 = median survey day, then frozen)
 
 [classify]
 columns = ["bottom_mean_c", "below_2c_km2"]

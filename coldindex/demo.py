@@ -276,12 +276,36 @@ def _domain_geojson() -> dict:
             "geometry": {"type": "Polygon", "coordinates": [[list(p) for p in SHELF]]}}
 
 
+STRATA = {  # invented management strata: longitude bands across the shelf (lon west, east)
+    "west stratum": (175.0, 178.5), "central stratum": (178.5, -178.0),
+    "east stratum": (-178.0, -174.0)}
+DEPTH_ZONES = "0-100,100-150,150-300"  # inner, middle and outer shelf [m]
+
+
+def _strata_geojson() -> dict:
+    """The strata as lon/lat boxes reaching past the shelf (the domain clips them)."""
+    feats = []
+    for name, (w, e) in STRATA.items():
+        east = e + 360.0 if e < w else e  # a band that crosses 180 degrees
+        ring = [[w, -64.0], [east, -64.0], [east, -60.0], [w, -60.0], [w, -64.0]]
+        ring = [[float(wrap_lon(lon)) if lon > 180 else lon, lat] for lon, lat in ring]
+        feats.append({"type": "Feature", "properties": {"name": name},
+                      "geometry": {"type": "Polygon", "coordinates": [ring]}})
+    return {"type": "FeatureCollection", "features": feats}
+
+
 def _config_text() -> str:
-    """The sample configuration: the template with the austral winter months."""
-    old = 'months = "11-4"  '
-    if TEMPLATE.count(old) != 1:  # pragma: no cover - guards the template's wording
-        raise RuntimeError("the config template no longer holds the skill.months line")
-    return TEMPLATE.replace(old, 'months = "5-10"  ')
+    """The sample configuration: the template with the austral winter months, strata, zones."""
+    text = TEMPLATE
+    for old, new in (
+        ('months = "11-4"  ', 'months = "5-10"  '),
+        ('# regions = "strata.geojson"  ', 'regions = "strata.geojson"    '),
+        ('depth_zones = ""         ', f'depth_zones = "{DEPTH_ZONES}"'),
+    ):
+        if text.count(old) != 1:  # pragma: no cover - guards the template's wording
+            raise RuntimeError(f"the config template no longer holds {old.strip()!r}")
+        text = text.replace(old, new)
+    return text
 
 
 PROFILE_STEP_DBAR = 5.0  # CTD bin size of the invented profiles
@@ -489,6 +513,7 @@ def write_scenario(out: Path, seed: int = SEED) -> list[Path]:
         write_csv(sc.ice, out / "ice.csv"),
         write_csv(sc.trajectories, out / "trajectories.csv"),
         write_json(sc.domain, out / "domain.geojson"),
+        write_json(_strata_geojson(), out / "strata.geojson"),
         write_bytes(_config_text().encode(), out / "coldindex.toml"),
     ]
     with atomic_path(out / "bathymetry.nc") as tmp:

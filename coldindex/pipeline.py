@@ -665,16 +665,18 @@ def with_region_columns(indices: pd.DataFrame, regions: pd.DataFrame | None,
     if len(set(slugs.values())) < len(slugs):
         raise InputError("Two region names give the same column prefix in covariates.csv "
                          f"({', '.join(sorted(slugs))}); rename one of them.")
-    wide = indices.set_index("year")
+    wide = indices.set_index("year").copy()
     names = list(columns)
+    extra: dict[str, np.ndarray] = {}
     for name, slug in slugs.items():
         g = regions[regions["region"] == name].set_index("year")
         for col in columns:
             for s in ("", "_sd", "_lo90", "_hi90"):
                 if col + s in g.columns:
-                    wide[f"{slug}_{col}{s}"] = g[col + s].reindex(wide.index).to_numpy(float)
+                    extra[f"{slug}_{col}{s}"] = g[col + s].reindex(wide.index).to_numpy(float)
             if col in g.columns:
                 names.append(f"{slug}_{col}")
+    wide = pd.concat([wide, pd.DataFrame(extra, index=wide.index)], axis=1)
     return wide.reset_index(), tuple(names)
 
 
@@ -682,13 +684,14 @@ def with_class_probabilities(cov: pd.DataFrame, classes: pd.DataFrame) -> pd.Dat
     """Covariates with each classified column's class probabilities (``<col>_p_cold``, ...)."""
     if classes.empty or "p_cold" not in classes.columns:
         return cov
-    out = cov.set_index("year")
+    out = cov.set_index("year").copy()  # copy: covariates_table's frame is fragmented
+    extra: dict[str, np.ndarray] = {}
     for col, g in classes.groupby("column", sort=False):
         g = g.set_index("year")
         for p in ("p_cold", "p_average", "p_warm"):
             if g[p].notna().any():
-                out[f"{col}_{p}"] = g[p].reindex(out.index).to_numpy(float)
-    return out.reset_index()
+                extra[f"{col}_{p}"] = g[p].reindex(out.index).to_numpy(float)
+    return pd.concat([out, pd.DataFrame(extra, index=out.index)], axis=1).reset_index()
 
 
 def revisions_table(current: pd.DataFrame, previous: pd.DataFrame | None, cur_prov: dict,
@@ -1124,7 +1127,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
             label="bottom temperature minus the reference mean map (°C)", anomaly=True)
     if skill_tab is not None and hc is not None and ol is not None:
         figs["skill"] = fg.skill_figure(skill_tab)
-        figs["hindcast"] = fg.hindcast_figure(hc.table, ol, cfg.skill.column)
+        figs["hindcast"] = fg.hindcast_figure(hc.table, ol, column_label(cfg.skill.column))
     if proj is not None:
         figs["projection"] = fg.projection_figure(proj.projection, proj.emergence)
         figs["stop_years"] = fg.stop_year_figure(proj.emergence,
@@ -1291,10 +1294,16 @@ def _report_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame,
         sections.append(S("projections", "Projections",
                           ["Probability of a cold year under each model and scenario after "
                            "bias adjustment, and the stop year: the first year from which "
-                           "the chance of any cold year in the window stays below the stop "
-                           "probability. The last cold year is the last year any member was "
-                           "cold, which can fall after the stop year when an isolated cold "
-                           "year remains possible but unlikely."],
+                           "the chance of any cold year in the window, from the smooth "
+                           "expectation and the fitted year-to-year noise, stays below the "
+                           "stop probability.",
+                           "The last cold year is different: the last year a member was "
+                           "actually cold in its adjusted trajectory. A stop year after it "
+                           "means cold years stayed possible for a while though none was "
+                           "drawn; a stop year before it means a late cold year was an "
+                           "unlikely draw under the fitted noise. Plan on the stop year and "
+                           "its spread across models, not on one trajectory's last cold "
+                           "year."],
                           pg.figure_html(pngs.get("projection"), "projection",
                                          "Probability of a cold year by model, one panel a "
                                          "scenario; ▼ marks stop years.")

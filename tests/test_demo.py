@@ -7,8 +7,8 @@ import pytest
 from coldindex.demo import write_scenario
 from tests.conftest import SAMPLE
 
-FILES = ("casts.csv", "ice.csv", "trajectories.csv", "domain.geojson", "coldindex.toml",
-         "bathymetry.nc", "profiles.nc", "ice_fields.nc", "coldindex-raw.toml")
+FILES = ("casts.csv", "ice.csv", "trajectories.csv", "domain.geojson", "strata.geojson",
+         "coldindex.toml", "bathymetry.nc", "profiles.nc", "ice_fields.nc", "coldindex-raw.toml")
 
 
 def test_demo_inputs_are_reproducible_and_match_the_committed_sample(tmp_path: Path):

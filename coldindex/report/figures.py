@@ -327,8 +327,8 @@ def maps_figure(years: list[int], fields: np.ndarray, grid_x: np.ndarray, grid_y
     aspect = float(np.ptp(grid_y)) / max(float(np.ptp(grid_x)), 1e-9)
     panel = 2.4
     fig, axes = plt.subplots(rows, cols, figsize=(panel * cols + 1.2,
-                                                  panel * aspect * rows + 0.9),
-                             squeeze=False, sharex=True, sharey=True)
+                                                  panel * aspect * rows + 0.6),
+                             squeeze=False, sharex=True, sharey=True, layout="compressed")
     finite = fields[np.isfinite(fields)]
     if anomaly:
         m = float(np.percentile(np.abs(finite), 99)) if finite.size else 1.0

@@ -31,7 +31,6 @@ details{margin:.4em 0 1em}
 summary{cursor:pointer;color:#1f4e79}
 .subtitle{color:#555;margin-top:-.6em}
 .cuts td,.cuts th{text-align:left}
-td:last-child{text-align:left;font-size:.9em;color:#444}
 """
 
 TEMPLATE = """<!DOCTYPE html>
@@ -102,6 +101,10 @@ def details_table(df: pd.DataFrame, what: str, shown: int = 12, digits: int = 3,
     newest_last
         Whether the newest rows are at the end.
     """
+    df = df.copy()
+    for c in df.columns:  # areas in whole km² (no 3.9e-06 km² from a far tail)
+        if str(c).endswith("_km2") and pd.api.types.is_float_dtype(df[c]):
+            df[c] = df[c].round(0)
     if len(df) <= shown:
         return f'<div class="scroll">{table_html(df, digits, max_rows=len(df) + 1)}</div>'
     part = df.tail(shown) if newest_last else df.head(shown)
