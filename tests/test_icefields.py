@@ -8,6 +8,8 @@ import pandas as pd
 import pyproj
 import pytest
 import xarray as xr
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from shapely.geometry import Polygon
 
 from coldindex.config import IceFieldsOptions
@@ -366,3 +368,25 @@ def test_overlapping_files_are_refused(tmp_path: Path):
     regions = read_regions(_regions(tmp_path / "r.geojson"))
     with pytest.raises(InputError, match="both hold the time step"):
         ice_table([tmp_path / "a.nc", tmp_path / "b.nc"], regions, IceFieldsOptions())
+
+
+@settings(max_examples=12, deadline=None)
+@given(shift=st.floats(-180.0, 180.0), seed=st.integers(0, 1000))
+def test_a_field_and_region_moved_in_longitude_give_the_same_sums(shift: float, seed: int):
+    rng = np.random.default_rng(seed)
+    lat = np.arange(-65.875, -58.0, 0.25)
+    base_lon = np.arange(170.125, 190.0, 0.25)
+    conc = rng.uniform(0.0, 1.0, (1, len(lat), len(base_lon)))
+    field = xr.DataArray(conc, dims=("time", "y", "x"))
+    out = []
+    for s in (0.0, shift):
+        ring = [(176.0 + s, -63.0), (184.0 + s, -63.0), (184.0 + s, -61.0), (176.0 + s, -61.0)]
+        poly = Polygon([((x + 180.0) % 360.0 - 180.0, y) for x, y in ring])
+        dom = domain_from_polygon(poly)
+        w = region_weights(lonlat_grid_cells((base_lon + s + 180.0) % 360.0 - 180.0, lat),
+                           {"r": dom})
+        sums = regional_sums(field, None, w, floe_thickness=True).compute()
+        out.append((_v(sums, "area_km2"), _v(sums, "extent_km2")))
+    assert out[1][0] == pytest.approx(out[0][0], rel=1e-6)
+    assert out[1][1] == pytest.approx(out[0][1], rel=1e-6)
+    assert out[0][0] <= out[0][1] + 0.15 * w[0].area_km2  # area <= extent + threshold share
