@@ -114,8 +114,8 @@ def draw_year(domain: Domain, grid: Grid, scenario: Scenario, rng: np.random.Gen
         mean += scenario.depth_slope * (depth - depth[:m].mean())
     truth = mean[:m] + field[:m]
     obs = mean[m:] + field[m:] + np.sqrt(vg.nugget) * rng.standard_normal(len(cast_xy))
-    casts = pd.DataFrame({"lat": lat, "lon": lon, "bottom_c": obs,
-                          "doy": np.full(len(obs), 30.0)})
+    casts = pd.DataFrame({"station": [f"R{i:04d}" for i in range(len(obs))], "lat": lat,
+                          "lon": lon, "bottom_c": obs, "doy": np.full(len(obs), 30.0)})
     return casts, truth
 
 
@@ -198,6 +198,7 @@ def run_scenario(domain: Domain, grid: Grid, scenario: Scenario, years: int, opt
         frames.append(casts.assign(year=2000 + k))
         truths.append({"year": 2000 + k, **true_indices(truth, area, options.thresholds)})
     casts = pd.concat(frames, ignore_index=True)
+    casts.insert(0, "row", np.arange(2, len(casts) + 2))  # as a spreadsheet numbers them
     bathy = bathymetry_grid(domain) if scenario.depth_slope else None
     res = compute_indices(casts, domain, grid, options, bathy)
     return res.table, pd.DataFrame(truths)
