@@ -624,7 +624,7 @@ def covariates_table(indices: pd.DataFrame, columns: tuple[str, ...], lags: tupl
     t = indices.set_index("year")
     years = np.arange(int(t.index.min()), int(t.index.max()) + 1)
     t = t.reindex(years)
-    out = pd.DataFrame({"year": years})
+    out: dict[str, np.ndarray] = {"year": years}  # one frame at the end: no fragmentation
     for col in columns:
         if col not in t.columns:
             raise InputError(f"covariates.columns names {col!r}, which indices.csv does not "
@@ -636,14 +636,15 @@ def covariates_table(indices: pd.DataFrame, columns: tuple[str, ...], lags: tupl
                 out[col + s] = t[col + s].to_numpy(float)
         ref = reference_values(years, v, reference)
         sd = float(np.std(ref, ddof=1)) if len(ref) > 1 else float("nan")
-        out[col + "_z"] = (v - float(np.mean(ref))) / sd if sd > 0 else np.nan
+        out[col + "_z"] = ((v - float(np.mean(ref))) / sd if sd > 0
+                           else np.full(len(years), np.nan))
     for col in columns:
         for lag in lags:
-            out[f"{col}_lag{lag}"] = pd.Series(out[col].to_numpy(), index=years).reindex(
+            out[f"{col}_lag{lag}"] = pd.Series(out[col], index=years).reindex(
                 years - lag).to_numpy()
-            out[f"{col}_z_lag{lag}"] = pd.Series(out[col + "_z"].to_numpy(),
+            out[f"{col}_z_lag{lag}"] = pd.Series(out[col + "_z"],
                                                  index=years).reindex(years - lag).to_numpy()
-    return out
+    return pd.DataFrame(out)
 
 
 def region_slug(name: str) -> str:

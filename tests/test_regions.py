@@ -266,3 +266,44 @@ def test_check_lists_the_planted_spatial_outlier(tmp_path):
     assert qc.loc[qc["flag"] == "spatial_outlier", "row"].tolist() == [41]
     r = CliRunner().invoke(app, ["check", str(casts), "--min-casts", "20", "--outlier-z", "0"])
     assert r.exit_code == 0 and "spatial_outlier" not in r.output
+
+
+def test_coastline_lines_in_the_domain_plane(box_domain, tmp_path):
+    from coldindex.io.readers import read_coastline
+    from coldindex.regions import lines_from_geojson
+
+    obj = {"type": "FeatureCollection", "features": [
+        {"type": "Feature", "properties": {},
+         "geometry": {"type": "LineString", "coordinates": [[179.0, 61.0], [-179.0, 61.0]]}},
+        {"type": "Feature", "properties": {}, "geometry": WEST["geometry"]}]}
+    lines = lines_from_geojson(obj, box_domain)
+    assert len(lines) == 2 and lines[0].shape == (2, 2)
+    # Across 180 deg the line stays short (about 108 km at 61 N), not round the globe.
+    assert 90.0 < np.hypot(*(lines[0][1] - lines[0][0])) < 120.0
+    with pytest.raises(InputError, match="holds no line or polygon"):
+        lines_from_geojson({"type": "FeatureCollection", "features": []}, box_domain)
+    bad = tmp_path / "coast.geojson"
+    bad.write_text("{not json")
+    with pytest.raises(InputError, match="inputs.coastline"):
+        read_coastline(bad, box_domain)
+
+
+def test_region_file_errors(box_domain, tmp_path):
+    from coldindex.io.readers import read_regions
+
+    with pytest.raises(InputError, match="no features"):
+        regions_from_geojson({"type": "FeatureCollection", "features": []}, box_domain)
+    point = {"type": "Feature", "properties": {"name": "p"},
+             "geometry": {"type": "Point", "coordinates": [179.0, 61.0]}}
+    with pytest.raises(InputError, match="not a Polygon"):
+        regions_from_geojson(_collection(point), box_domain)
+    flipped = _feature("flipped", [[61.0, 179.0], [62.0, 179.0], [62.0, 178.0], [61.0, 179.0]])
+    with pytest.raises(InputError, match="latitudes outside"):
+        regions_from_geojson(_collection(flipped), box_domain)
+    bad = tmp_path / "regions.geojson"
+    bad.write_text("[1, 2")
+    with pytest.raises(InputError, match="--regions"):
+        read_regions(bad, box_domain)
+    with pytest.raises(InputError, match="region name"):
+        regions_from_geojson(_collection({**WEST, "properties": {"name": "x" * 81}}),
+                             box_domain)
