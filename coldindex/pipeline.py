@@ -1334,7 +1334,7 @@ def _report_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame,
         stages, with_drift=cfg.inputs.bathymetry is not None,
         with_sims=cfg.index.sims > 0 and cfg.index.method == "kriging",
         with_regions=res is not None and res.regions is not None,
-        with_outliers=cfg.index.outlier_z > 0)]))
+        with_outliers=cfg.index.outlier_z > 0, with_timing=cfg.index.timing_drift)]))
     inputs = "".join(f"<li><code>{escape(k)}</code> sha256 {escape(v)}</li>"
                      for k, v in prov["inputs_sha256"].items())
     provenance = (f"<p>coldindex {escape(prov['version'])}; Python "

@@ -124,3 +124,14 @@ def test_maps_and_stop_year_figures_draw(box_domain):
     lines = fig.axes[0].get_lines()
     assert any(list(ln.get_xdata()) == [2100.0] for ln in lines)  # censored at the end
     assert any(list(ln.get_xdata()) == [2060.0] for ln in lines)
+
+
+def test_indices_paragraph_reports_the_timing_adjustment():
+    from coldindex.report.page import indices_paragraphs
+
+    ind = pd.DataFrame({"year": [2001, 2002], "bottom_mean_c": [1.0, 1.2],
+                        "below_2c_km2": [100.0, 90.0], "timing_rate_c_per_day": [0.05, 0.04],
+                        "timing_adjustment_c": [0.3, -0.25]})
+    text = " ".join(indices_paragraphs(ind, (2.0,)))
+    assert "moved the year's mean by -0.25 °C" in text and "+0.04 °C a day" in text
+    assert "survey-day drift" in methods_paragraph(["index"], True, False, False, False, True)

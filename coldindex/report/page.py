@@ -177,6 +177,13 @@ def indices_paragraphs(indices: pd.DataFrame, thresholds: Sequence[float]) -> li
         if parts:
             text += "; expected areas: " + "; ".join(parts)
         out.append(text + ".")
+    if "timing_adjustment_c" in ok and len(ok) and pd.notna(ok.iloc[-1]["timing_adjustment_c"]):
+        last = ok.iloc[-1]
+        out.append(f"Maps and indices are adjusted to one reference survey day (survey-day "
+                   f"drift): in {int(last['year'])} the field changed by "
+                   f"{last['timing_rate_c_per_day']:+.3g} °C a day during the survey, and the "
+                   f"adjustment moved the year's mean by {last['timing_adjustment_c']:+.2f} °C "
+                   "(timing_adjustment_c per year in indices.csv).")
     out.append("Areas are expected areas under the kriging model (cell area times the "
                "probability of being below the threshold); the _map columns are the areas of "
                "the kriged map. The 90 % intervals come from conditional simulations spread "
@@ -257,9 +264,11 @@ def qc_paragraphs(qc: pd.DataFrame, outliers: pd.DataFrame, z_max: float) -> lis
 
 
 def methods_paragraph(stages: Sequence[str], with_drift: bool, with_sims: bool,
-                      with_regions: bool, with_outliers: bool) -> str:
+                      with_regions: bool, with_outliers: bool, with_timing: bool = False
+                      ) -> str:
     """Methods text naming only the stages that ran (plain text)."""
-    parts = [("Kriging with a depth drift" if with_drift else "Ordinary kriging")
+    drifts = [d for d, on in (("depth", with_drift), ("survey-day", with_timing)) if on]
+    parts = [(f"Kriging with a {' and '.join(drifts)} drift" if drifts else "Ordinary kriging")
              + " of each year's casts on a fixed equal-area grid, variograms fitted by "
              "restricted maximum likelihood (Isaaks & Srivastava 1989; Cressie 1993), "
              "leave-one-out cross-validation (Dubrule 1983)"]
