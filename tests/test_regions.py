@@ -307,3 +307,23 @@ def test_region_file_errors(box_domain, tmp_path):
     with pytest.raises(InputError, match="region name"):
         regions_from_geojson(_collection({**WEST, "properties": {"name": "x" * 81}}),
                              box_domain)
+
+
+def test_idw_regions_are_map_areas_and_an_empty_region_says_so(box_domain):
+    from coldindex.regions import RegionWeights
+
+    grid = make_grid(box_domain, 20.0)
+    rw = region_weights(grid, box_domain,
+                        regions_from_geojson(_collection(WEST, EAST_S, EAST_N), box_domain))
+    empty = RegionWeights(names=("nowhere",), weights=np.zeros((1, rw.weights.shape[1])),
+                          outside_km2=0.0)
+    both = combine([rw, empty])
+    casts = qc_casts(synthetic_casts(years=(2001,), n_side=9))
+    opts = IndexOptions(thresholds=(0.0,), grid_km=20.0, sims=0, min_casts=20, method="idw")
+    res = compute_indices(casts, box_domain, grid, opts, regions=both)
+    t = res.regions.set_index("region")
+    assert t.loc["west", "below_0c_km2"] == t.loc["west", "below_0c_km2_map"]
+    assert t.iloc[:3]["below_0c_km2"].sum() == pytest.approx(
+        res.table["below_0c_km2"].iloc[0], rel=1e-9)
+    assert "holds no part of the domain" in t.loc["nowhere", "note"]
+    assert np.isnan(t.loc["nowhere", "bottom_mean_c"])
