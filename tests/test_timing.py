@@ -109,7 +109,7 @@ def test_index_cli_freezes_the_reference_day(tmp_path):
     qc = pd.read_csv(out / "qc.csv")
     used = _warming_survey().iloc[qc.index[qc["flag"] == "ok"]]
     # The median survey day of the casts used (the derived domain leaves some out).
-    assert frozen["reference_day"] == float(np.median(pd.to_datetime(used["date"]).dt.dayofyear))
+    assert frozen["reference_day"] == float(np.median(pd.to_datetime(used["date"]).dt.day_of_year))
     ind = pd.read_csv(out / "indices.csv")
     assert ind["timing_rate_c_per_day"].notna().all()
     r = CliRunner().invoke(app, [*args[:-1], "--timing-drift", "--reference-day", "500"])
