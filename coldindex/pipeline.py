@@ -1125,7 +1125,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
         figs["anomalies"] = fg.maps_figure(
             [ok_years[k] for k in last], anomalies, grid.x, grid.y, outline,
             [cast_xy[k] for k in last], None, lon=grid.lon, lat=grid.lat, coastline=coast,
-            label="bottom temperature minus the reference mean map (°C)", anomaly=True)
+            label="anomaly (°C)", anomaly=True)
     if skill_tab is not None and hc is not None and ol is not None:
         figs["skill"] = fg.skill_figure(skill_tab)
         figs["hindcast"] = fg.hindcast_figure(hc.table, ol, column_label(cfg.skill.column))

@@ -218,14 +218,19 @@ def classes_body(classes: pd.DataFrame, cuts: Mapping[str, object]) -> tuple[lis
     """Paragraphs and markup: the cut values beside the classes."""
     rows = []
     for col, c in cuts.items():
-        ref = getattr(c, "reference", None) or "given"
+        low, high = float(c.low), float(c.high)  # type: ignore[attr-defined]
+        lower = c.direction == "lower"  # type: ignore[attr-defined]
+        rule = str(getattr(c, "rule", ""))
+        ref = getattr(c, "reference", None) or ("given" if rule == "given" else "whole record")
+
+        def num(v: float, col: str = col) -> str:
+            return f"{v:,.0f}" if col.endswith("_km2") else f"{v:.3g}"
+
         rows.append({"column": col, "label": column_label(col),
-                     "cold": (f"< {c.low:.3g}" if c.direction == "lower"  # type: ignore[attr-defined]
-                              else f"> {c.high:.3g}"),  # type: ignore[attr-defined]
-                     "average": f"{c.low:.3g} to {c.high:.3g}",  # type: ignore[attr-defined]
-                     "warm": (f"> {c.high:.3g}" if c.direction == "lower"  # type: ignore[attr-defined]
-                              else f"< {c.low:.3g}"),  # type: ignore[attr-defined]
-                     "rule": getattr(c, "rule", ""), "reference": ref})
+                     "cold": f"< {num(low)}" if lower else f"> {num(high)}",
+                     "average": f"{num(low)} to {num(high)}",
+                     "warm": f"> {num(high)}" if lower else f"< {num(low)}",
+                     "rule": rule, "reference": ref})
     cut_table = pd.DataFrame(rows)
     wide = classes.pivot(index="year", columns="column", values="class").reset_index()
     paras = ["Each year is cold, average or warm by where its value falls against the cut "
