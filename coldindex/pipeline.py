@@ -563,7 +563,12 @@ def check_update_config(cfg: Config) -> None:
             k = float("nan")
         if not (np.isfinite(k) and 0 <= k <= 10):
             raise ConfigError(f"classify.rule sd:K needs a number K in 0..10, got: {rule!r}.")
-    names = set(indices_table(cfg.index.thresholds, with_sims=cfg.index.sims > 0).names) - {
+    if cfg.index.depth_zones and cfg.inputs.bathymetry is None:
+        raise ConfigError("index.depth_zones needs inputs.bathymetry to place the cells in "
+                          "depth zones; add the bathymetry or leave the zones empty.")
+    names = set(indices_table(cfg.index.thresholds, with_sims=cfg.index.sims > 0,
+                              with_timing=cfg.index.timing_drift,
+                              with_surface=True).names) - {
         "year", "variogram", "simulation", "note"}
     wanted = [("classify.columns", c) for c in cfg.classify.columns] + [
         ("covariates.columns", c) for c in cfg.covariates.columns] + [
@@ -599,6 +604,7 @@ def _check_paths(cfg: Config, out: Path) -> None:
              "inputs.bathymetry": cfg.inputs.bathymetry, "inputs.ice": cfg.inputs.ice,
              **{f"inputs.trajectories[{k}]": p for k, p in enumerate(cfg.inputs.trajectories)},
              "inputs.profiles": cfg.inputs.profiles, "inputs.ice_regions": cfg.inputs.ice_regions,
+             "inputs.regions": cfg.inputs.regions, "inputs.coastline": cfg.inputs.coastline,
              **{f"inputs.ice_fields[{k}]": p for k, p in enumerate(cfg.inputs.ice_fields)}}
     for key, p in files.items():
         if p is not None and not p.is_file():

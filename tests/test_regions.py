@@ -327,3 +327,19 @@ def test_idw_regions_are_map_areas_and_an_empty_region_says_so(box_domain):
         res.table["below_0c_km2"].iloc[0], rel=1e-9)
     assert "holds no part of the domain" in t.loc["nowhere", "note"]
     assert np.isnan(t.loc["nowhere", "bottom_mean_c"])
+
+
+def test_update_checks_regions_and_zones_at_the_door(tmp_path):
+    from coldindex.config import config_from_mapping
+    from coldindex.errors import ConfigError
+    from coldindex.pipeline import check_update_config, run_update
+
+    (tmp_path / "casts.csv").write_text("year,lat,lon,bottom_c\n")
+    cfg = config_from_mapping({"inputs": {"casts": "casts.csv", "regions": "missing.geojson"}},
+                              tmp_path)
+    with pytest.raises(ConfigError, match="inputs.regions names"):
+        run_update(cfg, tmp_path / "out")
+    cfg = config_from_mapping({"inputs": {"casts": "casts.csv"},
+                               "index": {"depth_zones": "0-50"}}, tmp_path)
+    with pytest.raises(ConfigError, match="index.depth_zones needs inputs.bathymetry"):
+        check_update_config(cfg)
