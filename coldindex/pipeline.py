@@ -1239,7 +1239,7 @@ def _report_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame,
     title = cfg.report.title + (f", {last_year} survey" if last_year is not None else "")
     cols = ["year", "n_casts", "median_doy", "coverage", "bottom_mean_c",
             *[c for c in indices.columns if c.startswith("below_") and c.count("_") == 2],
-            "cv_rmse_c", "note"]
+            "surface_mean_c", "timing_adjustment_c", "cv_rmse_c", "note"]
     series_cols = ", ".join(pg.column_label(c) for c in
                             ["bottom_mean_c", *[c for c in cfg.classify.columns
                                                 if c.startswith("below_")][:1]])
