@@ -1259,7 +1259,8 @@ def _report_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame,
                     "note"]
         shown = reg[reg["year"] == reg["year"].max()] if len(reg) else reg
         sections.append(S("regions", "Regions and depth zones",
-                          pg.regions_paragraphs(reg, th),
+                          pg.regions_paragraphs(reg, th, check.domain.area_km2
+                                                if check.domain is not None else None),
                           pg.details_table(shown[[c for c in reg_cols if c in reg]],
                                            "regions", shown=len(shown))
                           + "<details><summary>Every year and region</summary>"

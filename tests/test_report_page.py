@@ -135,3 +135,14 @@ def test_indices_paragraph_reports_the_timing_adjustment():
     text = " ".join(indices_paragraphs(ind, (2.0,)))
     assert "moved the year's mean by -0.25 °C" in text and "+0.04 °C a day" in text
     assert "survey-day drift" in methods_paragraph(["index"], True, False, False, False, True)
+
+
+def test_regions_paragraph_reports_the_area_outside():
+    from coldindex.report.page import regions_paragraphs
+
+    reg = pd.DataFrame({"year": 2001, "region": ["a", "b", "depth 0-50 m"],
+                        "region_km2": [40.0, 50.0, 100.0], "bottom_mean_c": [1.0, 2.0, 1.5],
+                        "below_2c_km2": [40.0, 10.0, 50.0]})
+    text = " ".join(regions_paragraphs(reg, (2.0,), 100.0))
+    assert "10 km² of the domain (10.0%) lies outside every region" in text
+    assert "outside every depth zone" not in text

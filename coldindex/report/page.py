@@ -192,8 +192,9 @@ def indices_paragraphs(indices: pd.DataFrame, thresholds: Sequence[float]) -> li
     return out
 
 
-def regions_paragraphs(regions: pd.DataFrame, thresholds: Sequence[float]) -> list[str]:
-    """How to read the regions table."""
+def regions_paragraphs(regions: pd.DataFrame, thresholds: Sequence[float],
+                       domain_km2: float | None = None) -> list[str]:
+    """How to read the regions table (and how much of the domain no region holds)."""
     from coldindex.schema import area_column
 
     names = list(dict.fromkeys(regions["region"]))
@@ -202,6 +203,16 @@ def regions_paragraphs(regions: pd.DataFrame, thresholds: Sequence[float]) -> li
            "the same kriging and the same conditional simulations as the domain's: regions "
            "that cover the domain add up to it in every simulation, so their intervals are "
            "consistent with the domain's."]
+    if domain_km2 and len(regions):
+        first = regions[regions["year"] == regions["year"].min()]
+        zone = first["region"].astype(str).str.match(r"depth \S+-\S+ m$")
+        for kind, part in (("region", first[~zone]), ("depth zone", first[zone])):
+            if len(part):
+                left = domain_km2 - float(part["region_km2"].sum())
+                if left > 1e-6 * domain_km2:
+                    out.append(f"{left:,.0f} km² of the domain ({left / domain_km2:.1%}) lies "
+                               f"outside every {kind}, so the {kind}s do not add up to the "
+                               "domain.")
     if len(ok):
         yr = int(ok["year"].max())
         g = ok[ok["year"] == yr]
