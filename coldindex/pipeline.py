@@ -388,7 +388,8 @@ UPDATE_STAGES = ("check", "index", "classify", "shifts", "skill", "project", "co
 CAUTIONS = ("These indicators are decision support. They rest on stated assumptions (a "
             "Gaussian, stationary bottom-temperature field around a constant mean or a depth "
             "trend; one variogram family for all years; AR(1) red noise for the shift and "
-            "skill tests) and carry interpolation uncertainty only. Where they feed "
+            "skill tests) and carry the uncertainty of interpolation and of the variogram's "
+            "parameters, not of the choice of model or of the survey design. Where they feed "
             "management advice, defer to the responsible agency's reviewed assessment.")
 
 
