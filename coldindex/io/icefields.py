@@ -12,7 +12,6 @@ axes with a CF grid mapping, or a curvilinear grid with 2-D latitude and longitu
 
 from __future__ import annotations
 
-import json
 import re
 from dataclasses import dataclass
 from pathlib import Path
@@ -30,7 +29,7 @@ from coldindex.icefields import (
     lonlat_grid_cells,
     projected_grid_cells,
 )
-from coldindex.io.readers import _check_file, _read_bytes
+from coldindex.io.readers import _check_file, read_json
 
 TIME_CHUNK = 31  # time steps read at once: a month of daily fields
 CONCENTRATION_UNITS = {"%": 0.01, "percent": 0.01, "1": 1.0, "": None, "fraction": 1.0,
@@ -312,12 +311,7 @@ def read_regions(path: Path) -> dict[str, Domain]:
     dict
         ``{name: Domain}`` in file order.
     """
-    _check_file(path)
-    try:
-        obj = json.loads(_read_bytes(path).decode("utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError) as exc:
-        raise InputError(f"{path} is not valid GeoJSON ({type(exc).__name__}); give a "
-                         "FeatureCollection of region polygons.") from None
+    obj = read_json(path, "give a FeatureCollection of region polygons", "GeoJSON")
     if not isinstance(obj, dict):
         raise InputError(f"{path} is not a GeoJSON object.")
     feats = obj.get("features") if obj.get("type") == "FeatureCollection" else [obj]

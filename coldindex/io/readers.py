@@ -12,6 +12,7 @@ import io
 import json
 from collections.abc import Mapping, Sequence
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -47,6 +48,34 @@ def _read_bytes(path: Path) -> bytes:
         return path.read_bytes()
     except OSError as exc:
         raise InputError(os_error_sentence(exc, "reading", path)) from None
+
+
+def read_json(path: Path, advice: str, kind: str = "JSON") -> Any:
+    """Read a JSON file, or refuse it in one sentence that ends with ``advice``.
+
+    Parameters
+    ----------
+    path
+        The file.
+    advice
+        What to give instead, e.g. ``"give one Polygon or MultiPolygon"``.
+    kind
+        What the file should be, for the message (``JSON``, ``GeoJSON``).
+
+    Returns
+    -------
+    object
+        The parsed JSON value.
+    """
+    _check_file(path)
+    try:
+        return json.loads(_read_bytes(path).decode("utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path} is not valid {kind} ({type(exc).__name__}); {advice}.") \
+            from None
+    except RecursionError:
+        raise InputError(f"{path} is not valid {kind} (nested too deeply to be read); "
+                         f"{advice}.") from None
 
 
 def refuse_repeated_files(paths: Sequence[Path], what: str) -> None:
@@ -305,14 +334,7 @@ def check_trajectories(traj: pd.DataFrame, source: str) -> None:
 
 def read_domain(path: Path) -> Domain:
     """Read a domain polygon from GeoJSON (one Polygon or MultiPolygon, lon/lat)."""
-    _check_file(path)
-    try:
-        obj = json.loads(_read_bytes(path).decode("utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path} is not valid GeoJSON ({exc}).") from None
-    except RecursionError:
-        raise InputError(f"{path} is nested too deeply to be a GeoJSON polygon; give one "
-                         "Polygon or MultiPolygon.") from None
+    obj = read_json(path, "give one Polygon or MultiPolygon", "GeoJSON")
     if not isinstance(obj, dict):
         raise InputError(f"{path} is not a GeoJSON object.")
     try:
@@ -329,15 +351,7 @@ def read_regions(path: Path, domain: Domain) -> list:
     """Read named regions from GeoJSON into the domain's plane (:mod:`coldindex.regions`)."""
     from coldindex.regions import regions_from_geojson
 
-    _check_file(path)
-    try:
-        obj = json.loads(_read_bytes(path).decode("utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path} is not valid GeoJSON ({exc}); give a FeatureCollection of "
-                         "named polygons (--regions).") from None
-    except RecursionError:
-        raise InputError(f"{path} is nested too deeply to be GeoJSON regions (--regions).") \
-            from None
+    obj = read_json(path, "give a FeatureCollection of named polygons (--regions)", "GeoJSON")
     return regions_from_geojson(obj, domain, source=str(path))
 
 
@@ -345,15 +359,8 @@ def read_coastline(path: Path, domain: Domain) -> list:
     """Read a coastline (GeoJSON lines or polygons) into the domain's plane, for maps."""
     from coldindex.regions import lines_from_geojson
 
-    _check_file(path)
-    try:
-        obj = json.loads(_read_bytes(path).decode("utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path} is not valid GeoJSON ({exc}); give the coastline as lines "
-                         "or polygons (inputs.coastline).") from None
-    except RecursionError:
-        raise InputError(f"{path} is nested too deeply to be a GeoJSON coastline "
-                         "(inputs.coastline).") from None
+    obj = read_json(path, "give the coastline as lines or polygons (inputs.coastline)",
+                    "GeoJSON")
     return lines_from_geojson(obj, domain, source=str(path))
 
 
@@ -486,12 +493,7 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
 
 def read_cuts(path: Path) -> dict:
     """Read a ``cuts.json`` file as a dictionary."""
-    _check_file(path)
-    try:
-        obj = json.loads(_read_bytes(path).decode("utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError) as exc:
-        raise InputError(f"{path} is not valid JSON ({type(exc).__name__}); write it with "
-                         "coldindex classify.") from None
+    obj = read_json(path, "write it with coldindex classify")
     if not isinstance(obj, dict):
         raise InputError(f"{path} is not a cuts object; write it with coldindex classify.")
     for key in ("low", "high"):
