@@ -35,6 +35,7 @@ from coldindex.interpolate import (
     conditional_realizations,
     idw_loo,
     idw_predict,
+    weighted_summaries,
 )
 from coldindex.regions import RegionWeights, node_weights
 from coldindex.schema import area_column, indices_table, regions_table
@@ -692,32 +693,6 @@ class SimSummaries:
     clipped: float
     region_means: FloatArray
     region_areas: FloatArray
-
-
-def weighted_summaries(values: FloatArray, weights: FloatArray, thresholds: Sequence[float]
-                       ) -> tuple[FloatArray, FloatArray]:
-    """Per-realization weighted means and areas below thresholds.
-
-    Parameters
-    ----------
-    values
-        Realizations at the simulation nodes, (n, k). [°C]
-    weights
-        Area of each node inside each region, (r, k). [km²]
-    thresholds
-        Thresholds. [°C]
-
-    Returns
-    -------
-    tuple
-        Means (n, r) [°C] (NaN for a region without area) and areas (n, r, t). [km²]
-    """
-    w = np.asarray(weights, float)
-    tot = w.sum(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        means = np.where(tot > 0, (values @ w.T) / np.where(tot > 0, tot, 1.0), np.nan)
-    areas = np.stack([(values < t).astype(float) @ w.T for t in thresholds], axis=2)
-    return means, areas
 
 
 def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,

@@ -37,6 +37,7 @@ SIAM J. Sci. Comput. 18, 1088-1107.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import cached_property
@@ -470,11 +471,35 @@ class Realizations:
 
     def summaries(self, thresholds: ArrayLike) -> tuple[FloatArray, FloatArray]:
         """Per realization: area-weighted mean (n,) [°C], area below each threshold (n, t) [km²]."""
-        a = self.node_area
-        means = self.values @ a / a.sum()
         t = np.atleast_1d(np.asarray(thresholds, float))
-        areas = np.stack([(self.values < ti).astype(float) @ a for ti in t], axis=1)
-        return means, areas
+        means, areas = weighted_summaries(self.values, self.node_area[None, :], list(t))
+        return means[:, 0], areas[:, 0, :]
+
+
+def weighted_summaries(values: FloatArray, weights: FloatArray, thresholds: Sequence[float]
+                       ) -> tuple[FloatArray, FloatArray]:
+    """Per-realization weighted means and areas below thresholds.
+
+    Parameters
+    ----------
+    values
+        Realizations at the simulation nodes, (n, k). [°C]
+    weights
+        Area of each node inside each region, (r, k). [km²]
+    thresholds
+        Thresholds. [°C]
+
+    Returns
+    -------
+    tuple
+        Means (n, r) [°C] (NaN for a region without area) and areas (n, r, t). [km²]
+    """
+    w = np.asarray(weights, float)
+    tot = w.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        means = np.where(tot > 0, (values @ w.T) / np.where(tot > 0, tot, 1.0), np.nan)
+    areas = np.stack([(values < t).astype(float) @ w.T for t in thresholds], axis=2)
+    return means, areas
 
 
 def _coarse_nodes(mask: NDArray[np.bool_], max_nodes: int) -> tuple[NDArray[np.int_], int]:
