@@ -143,6 +143,12 @@ class _Profile:
         self.restricted = restricted
         self.n, self.p = F.shape
         self.dof = self.n - self.p if restricted else self.n
+        spacing, diag = _spacing_and_diagonal(xy)
+        # Search bounds: log length scale, and the smooth share w (the Gaussian family keeps
+        # a nugget of at least GAUSSIAN_MIN_NUGGET_SHARE).
+        self.ubounds = (float(np.log(LEN_LOW_SPACINGS * spacing)),
+                        float(np.log(LEN_HIGH_DIAGONALS * diag)))
+        self.w_hi = 1.0 - GAUSSIAN_MIN_NUGGET_SHARE if family == "gaussian" else 1.0
 
     def evaluate(self, len_scale: float, share: float) -> tuple[float, float]:
         """``-2 log L`` (profiled, up to a constant) and ``q / dof`` at one point."""
@@ -182,10 +188,8 @@ def _likelihood_fit(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayL
     if not np.ptp(z) > 0:
         raise TooFewDataError("The casts of this year are all equal; a variogram cannot be "
                               "fitted.")
-    spacing, diag = _spacing_and_diagonal(xy)
-    lo, hi = np.log(LEN_LOW_SPACINGS * spacing), np.log(LEN_HIGH_DIAGONALS * diag)
-    w_hi = 1.0 - GAUSSIAN_MIN_NUGGET_SHARE if family == "gaussian" else 1.0
     prof = _Profile(xy, z, F, family, restricted)
+    (lo, hi), w_hi = prof.ubounds, prof.w_hi
 
     def objective(t: FloatArray) -> float:
         return prof.evaluate(float(np.exp(t[0])), float(t[1]))[0]
@@ -215,18 +219,18 @@ def _likelihood_fit(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayL
         notes.append("no spatial structure found (pure nugget)")
     if family == "gaussian" and w >= w_hi - 1e-4:
         notes.append("nugget at its lower bound (1 % of the variance)")
-    post = _grid_posterior(prof, u, w, (lo, hi), w_hi, f0) if posterior else None
+    post = _grid_posterior(prof, u, w) if posterior else None
     return Fit(variogram=vg, method="reml" if restricted else "ml", at_bound=tuple(notes),
                neg2loglik=f0, posterior=post)
 
 
-def _hessian(prof: _Profile, u0: float, w0: float, ubounds: tuple[float, float], w_hi: float,
-             hu: float = 0.1, hw: float = 0.04) -> FloatArray:
+def _hessian(prof: _Profile, u0: float, w0: float, hu: float = 0.1, hw: float = 0.04
+             ) -> FloatArray:
     """Hessian of ``-log L`` in ``(log len, w)`` from a 3 x 3 finite-difference stencil.
 
     Near a bound the stencil's centre moves inside the bounds (a one-sided estimate).
     """
-    lo, hi = ubounds
+    (lo, hi), w_hi = prof.ubounds, prof.w_hi
     cu = float(np.clip(u0, lo + hu, hi - hu)) if hi - lo > 2 * hu else 0.5 * (lo + hi)
     cw = float(np.clip(w0, hw, w_hi - hw))
     f = np.empty((3, 3))
@@ -239,8 +243,8 @@ def _hessian(prof: _Profile, u0: float, w0: float, ubounds: tuple[float, float],
     return 0.5 * np.array([[huu, huw], [huw, hww]])
 
 
-def _grid_posterior(prof: _Profile, u0: float, w0: float, ubounds: tuple[float, float],
-                    w_hi: float, f0: float, n_side: int = 11, reach: float = 4.0) -> Posterior:
+def _grid_posterior(prof: _Profile, u0: float, w0: float, n_side: int = 11,
+                    reach: float = 4.0) -> Posterior:
     """The profiled restricted likelihood on a grid around the optimum.
 
     The grid is laid along the principal axes of the inverse Hessian of
@@ -249,8 +253,8 @@ def _grid_posterior(prof: _Profile, u0: float, w0: float, ubounds: tuple[float, 
     correlated; points outside the bounds are left out. Where the Hessian is not
     positive definite (a flat likelihood), the axes fall back to wide defaults.
     """
-    lo, hi = ubounds
-    H = _hessian(prof, u0, w0, ubounds, w_hi)
+    (lo, hi), w_hi = prof.ubounds, prof.w_hi
+    H = _hessian(prof, u0, w0)
     default = np.diag([1.5, 0.5]) / reach  # half-widths 1.5 in log len, 0.5 in w
     try:
         evals, evecs = np.linalg.eigh(H)
@@ -305,15 +309,12 @@ def with_posterior(fit: Fit, xy: ArrayLike, values: ArrayLike, drift: ArrayLike 
     z = np.asarray(values, float)
     F = drift_matrix(len(z), drift)
     vg = fit.variogram
-    spacing, diag = _spacing_and_diagonal(xy)
-    lo, hi = np.log(LEN_LOW_SPACINGS * spacing), np.log(LEN_HIGH_DIAGONALS * diag)
-    w_hi = 1.0 - GAUSSIAN_MIN_NUGGET_SHARE if vg.family == "gaussian" else 1.0
     prof = _Profile(xy, z, F, vg.family, fit.method == "reml")
+    (lo, hi), w_hi = prof.ubounds, prof.w_hi
     u0 = float(np.clip(np.log(vg.len_scale), lo, hi))
     total = vg.sill + vg.nugget
     w0 = float(np.clip(vg.sill / total if total > 0 else 0.0, 0.0, w_hi))
-    f0 = prof.evaluate(float(np.exp(u0)), w0)[0]
-    post = _grid_posterior(prof, u0, w0, (lo, hi), w_hi, f0)
+    post = _grid_posterior(prof, u0, w0)
     return Fit(variogram=vg, method=fit.method, at_bound=fit.at_bound,
                neg2loglik=fit.neg2loglik, posterior=post)
 
@@ -353,9 +354,9 @@ def fit_ml(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | Non
            posterior: bool = False) -> Fit:
     """Plain maximum likelihood fit (biased low for the variance with a drift).
 
-    Parameters and returns as :func:`fit_reml`; the parameter posterior, when
-    asked for, is still the restricted one's shape evaluated with the plain
-    likelihood (use ``reml`` for honest draws).
+    Parameters and returns as :func:`fit_reml`; the parameter grid, when asked
+    for, is tabulated from the plain likelihood (``reml`` gives the posterior
+    the docs describe).
     """
     return _likelihood_fit(xy, values, family, drift, False, posterior)
 
