@@ -148,10 +148,8 @@ class IndexResult:
     family
         Variogram family used (or ``per-year``/``idw``).
     family_scores
-        Pooled leave-one-out RMSE by family when the family was chosen. [°C]
-    clipped_share
-        Largest share of embedding eigenvalue mass clipped in any year by a
-        simulation that kept the embedding (at most the clip tolerance).
+        Pooled score by family when the family was chosen: ``-2 log L`` for likelihood
+        fits, leave-one-out RMSE [°C] for ``wls``.
     reference_spacing_km
         The reference station spacing used for coverage (to be frozen). [km]
     fit_method
@@ -175,7 +173,6 @@ class IndexResult:
     casts: pd.DataFrame
     family: str
     family_scores: dict[str, float] = field(default_factory=dict)
-    clipped_share: float = 0.0
     reference_spacing_km: float = float("nan")
     fit_method: str = "reml"
     reference_day: float | None = None
@@ -366,7 +363,6 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
     m = len(cell_area)
     est_all = np.full((len(years), m), np.nan)
     sd_all = np.full((len(years), m), np.nan)
-    clipped = 0.0
     for k, yr in enumerate(years):
         g = by_year[yr]
         xy, z, drift = arrays(g)
@@ -438,7 +434,6 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                     sims = simulate_summaries(kr, fit, xy, z, drift, grid, cell_xy, cell_area,
                                               drift_cells, options, rng, region_w)
                     draws[yr] = sims
-                    clipped = max(clipped, sims.clipped)
                     row["simulation"] = sims.method
                     if sims.note:
                         notes.append(sims.note)
@@ -475,7 +470,7 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
     if len(out_df):
         casts = casts[~casts["row"].isin(out_df["row"])].reset_index(drop=True)
     return IndexResult(table=df, years=years, estimate=est_all, sd=sd_all, casts=casts,
-                       family=family, family_scores=scores, clipped_share=clipped,
+                       family=family, family_scores=scores,
                        reference_spacing_km=ref, fit_method=options.fit,
                        reference_day=ref_day, regions=reg_df,
                        outliers=out_df, draws=draws)
@@ -676,8 +671,6 @@ class SimSummaries:
         ``circulant``, ``exact`` or ``circulant+exact``.
     note
         A note for the year (empty when nothing to say).
-    clipped
-        Largest clipped share of embedding eigenvalue mass kept.
     region_means
         Mean of each region per realization, (n, r); NaN for a region with no
         area. [°C]
@@ -690,7 +683,6 @@ class SimSummaries:
     areas: FloatArray
     method: str
     note: str
-    clipped: float
     region_means: FloatArray
     region_areas: FloatArray
 
@@ -719,7 +711,7 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
     Returns
     -------
     SimSummaries
-        Domain and region summaries per realization, method, note and clipped share.
+        Domain and region summaries per realization, method and note.
     """
     n = options.sims
     k = min(options.param_draws, n)
@@ -734,7 +726,6 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
     rw = np.zeros((0, len(cell_area))) if region_w is None else np.asarray(region_w, float)
     means, areas, methods, coarse = [], [], set(), set()
     rmeans, rareas = [], []
-    clipped = 0.0
     for vg, c in zip(draws, counts, strict=True):
         if c == 0:
             continue
@@ -752,8 +743,6 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
         methods.add(real.method)
         if real.method == "exact":
             coarse.add(real.node_km)
-        else:
-            clipped = max(clipped, real.clipped_share)
     method = "+".join(sorted(methods)) if len(methods) > 1 else methods.pop()
     note = ""
     if coarse:
@@ -761,5 +750,5 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
                 + (f" on {max(coarse):.3g} km blocks" if max(coarse) > grid.cell_km + 1e-9
                    else ""))
     return SimSummaries(means=np.concatenate(means), areas=np.concatenate(areas),
-                        method=method, note=note, clipped=clipped,
+                        method=method, note=note,
                         region_means=np.concatenate(rmeans), region_areas=np.concatenate(rareas))
