@@ -143,7 +143,9 @@ def run_qc(raw: pd.DataFrame, domain: Domain | None = None, *, source: str = "ca
     Parameters
     ----------
     raw
-        Casts as returned by :func:`coldindex.io.readers.read_casts` (strings, ``row``).
+        Casts as returned by :func:`coldindex.io.readers.read_casts` (strings, and ``row``:
+        the row as a spreadsheet shows the file, header = row 1), whose row numbers every
+        detail that names a row repeats.
     domain
         Survey domain; casts outside it are flagged. None skips that check.
     source

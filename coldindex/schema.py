@@ -32,7 +32,8 @@ class Column:
     meaning
         One sentence a reader of the file can rely on.
     kind
-        ``int``, ``float``, ``str`` or ``bool``.
+        ``int``, ``float``, ``str``, ``bool`` or ``date`` (inputs: a date readers rewrite
+        as ISO 8601, its day-month order detected or given with ``date_format``).
     required
         Whether an input file must carry it (inputs only).
     """
@@ -73,7 +74,9 @@ class Table:
 CASTS = Table(
     "casts",
     "Input: one bottom-temperature cast a row (CSV or Parquet). Map your own headers with "
-    "`--columns ours=theirs,...`.",
+    "`--columns ours=theirs,...`. Numbers may be written with a decimal comma in a file "
+    "delimited by semicolons or tabs (detected when no number has a decimal point, or given "
+    "as the decimal mark, `decimal`); a file mixing both marks is refused.",
     (
         Column("year", "-", "Survey year the cast belongs to.", "int", True),
         Column("lat", "degrees_north", "Latitude of the cast, -90..90.", "float", True),
@@ -82,7 +85,9 @@ CASTS = Table(
                True),
         Column("station", "-", "Station name; without it a position rounded to 1 km stands "
                "for the station.", "str"),
-        Column("date", "-", "Date of the cast, ISO 8601 (YYYY-MM-DD).", "str"),
+        Column("date", "-", "Date of the cast: ISO 8601 (YYYY-MM-DD), or day, month and a "
+               "four-digit year in either order (10.01.2019, 01/10/2019), the order detected "
+               "from days above 12 or given with the date format (date_format).", "date"),
         Column("depth_m", "m", "Bottom depth at the cast, positive down.", "float"),
         Column("salinity", "1", "Practical salinity (PSS-78) near the bottom.", "float"),
         Column("surface_c", "degC", "Sea-surface temperature at the cast.", "float"),
@@ -127,7 +132,8 @@ PROFILES = Table(
     (
         Column("cast", "-", "Cast id: every sample of one cast carries the same id.", "str",
                True),
-        Column("time", "-", "Date or date and time of the cast, ISO 8601.", "str", True),
+        Column("time", "-", "Date or date and time of the cast, ISO 8601 or day and month "
+               "in either order (as the casts' date).", "date", True),
         Column("lat", "degrees_north", "Latitude of the cast.", "float", True),
         Column("lon", "degrees_east", "Longitude of the cast, -180..180 or 0..360.", "float",
                True),
@@ -153,7 +159,9 @@ CASTS_FROM_PROFILES = Table(
     "profile checks (`profile_flag`).",
     (
         Column("row", "-", "Row number (1 = first cast, casts sorted by id).", "int"),
-        *(c for c in (CASTS.get(n) for n in ("year", "station", "date", "lat", "lon")) if c),
+        CASTS.get("year"), CASTS.get("station"),
+        Column("date", "-", "Date of the cast, ISO 8601 (YYYY-MM-DD).", "str"),
+        CASTS.get("lat"), CASTS.get("lon"),
         Column("depth_m", "m", "Sea-floor depth at the cast: recorded, else from the "
                "bathymetry file (see floor_source).", "float"),
         Column("bottom_c", "degC", "Bottom temperature: the deepest good sample, or the mean "
@@ -202,7 +210,8 @@ QC = Table(
     "Output: every input row of the casts file with its quality-control flag. Flagged casts "
     "are excluded from the indices, never silently dropped.",
     (
-        Column("row", "-", "Row number in the input file (1 = first data row).", "int"),
+        Column("row", "-", "Row of the cast in the input file as a spreadsheet shows it "
+               "(the header is row 1, so the first data row is 2; blank lines count).", "int"),
         Column("year", "-", "Survey year as read (blank when unreadable).", "int"),
         Column("station", "-", "Station name, or the rounded position standing for it.", "str"),
         Column("lat", "degrees_north", "Latitude as read.", "float"),
@@ -744,7 +753,7 @@ def numeric_column(raw: Any, col: str, source: str, *, whole: bool = False,
     Parameters
     ----------
     raw
-        Frame of strings as read, with ``row`` (1-based data row).
+        Frame of strings as read, with ``row`` (the row as a spreadsheet shows it).
     col
         Column to parse.
     source

@@ -192,6 +192,8 @@ SERIES_SPOILS: dict[str, tuple[object, str]] = {
     "value_1e308": (_series_rows(bad_value="1e308").encode(), "plausible size"),
     "value_minus_1e308": (_series_rows(bad_value="-1e308").encode(), "plausible size"),
     "value_text": (_series_rows(bad_value="abc").encode(), "finite number"),
+    "value_decimal_comma_quoted": (_series_rows(bad_value='"1,5"').encode(),
+                                   "mixes decimal commas"),
     "all_blank": ((SERIES_HEAD + "".join(f"{1990 + i},190,,0.1,5\n" for i in range(30))).encode(),
                   "holds no value"),
     "duplicate_year": ((SERIES_HEAD + "2001,190,1,0.1,5\n2001,190,2,0.1,5\n").encode(),
@@ -250,6 +252,26 @@ CASTS_SPOILS: dict[str, tuple[object, str]] = {
         "casts"),
     "all_values_1e308": ((CASTS_HEAD + "".join(
         f"2001,{60.2 + 0.01 * i},179.5,1e308,S{i}\n" for i in range(40))).encode(), "casts"),
+    # Regional exports: decimal commas and day-month dates the reader cannot read safely.
+    "decimals_mixed": (("year;lat;lon;bottom_c;station\n" + "".join(
+        f"2001;60,{20 + i};179,5;1,0;S{i}\n" for i in range(30)) + "2001;60.6;179.5;1.0;T\n"
+        ).encode("latin-1"), "mixes decimal commas and decimal points"),
+    "decimal_comma_quoted": ((CASTS_HEAD + "".join(
+        f'2001,"60,{20 + i}",179,1,S{i}\n' for i in range(30))).encode(), "quoted number"),
+    "decimal_comma_unquoted": ((CASTS_HEAD + "".join(
+        f"2001,60,{20 + i},179,5,1,0,S{i}\n" for i in range(30))).encode(),
+        "more fields than the header"),
+    "dates_ambiguous": (("year,lat,lon,bottom_c,station,date\n" + "".join(
+        f"2001,{60.2 + 0.01 * i},179.5,1.0,S{i},0{1 + i % 9}.07.2001\n" for i in range(30))
+        ).encode(), "cannot be told apart"),
+    "dates_both_orders": ((b"year,lat,lon,bottom_c,station,date\n"
+                           b"2001,60.2,179.5,1.0,A,25.07.2001\n"
+                           b"2001,60.3,179.5,1.0,B,07/25/2001\n"), "month first"),
+    "date_two_digit_year": ((b"year,lat,lon,bottom_c,station,date\n"
+                             b"2001,60.2,179.5,1.0,A,25.07.01\n"), "two-digit year"),
+    "date_impossible": ((b"year,lat,lon,bottom_c,station,date\n"
+                         b"2001,60.2,179.5,1.0,A,25.07.2001\n"
+                         b"2001,60.3,179.5,1.0,B,31.06.2001\n"), "not a date"),
 }
 
 
@@ -280,9 +302,9 @@ def test_casts_dated_in_another_year_are_flagged(good: Path, tmp_path: Path):
     code, text = invoke(["check", path, "--out", tmp_path / "out", "--domain",
                          good / "domain.geojson", "--min-casts", "20"])
     assert code == 0, text
-    qc = pd.read_csv(tmp_path / "out" / "qc.csv").set_index("row")
-    assert qc.loc[4, "flag"] == "date_outside_year" and "1999-07-03" in qc.loc[4, "detail"]
-    assert qc.loc[5, "flag"] == "ok"
+    qc = pd.read_csv(tmp_path / "out" / "qc.csv").set_index("row")  # spreadsheet rows
+    assert qc.loc[5, "flag"] == "date_outside_year" and "1999-07-03" in qc.loc[5, "detail"]
+    assert qc.loc[6, "flag"] == "ok"
     assert (qc["flag"] != "ok").sum() == 1
 
 
@@ -304,6 +326,9 @@ ICE_SPOILS: dict[str, tuple[object, str]] = {
     "ice_1e308": (_ice_rows("1991,2,1e308"), "plausible size"),
     "ice_inf": (_ice_rows("1991,2,inf"), "ice"),
     "month_13": (_ice_rows("1991,13,5.0"), "month"),
+    "month_fraction": (_ice_rows("1991,2.5,5.0"), "calendar month 1..12"),
+    "month_zero": (_ice_rows("1991,0,5.0"), "calendar month 1..12"),
+    "ice_decimal_comma_quoted": (_ice_rows('1991,2,"5,5"'), "mixes decimal commas"),
     "negative_ice": (_ice_rows("1991,2,-3"), "negative"),
     "duplicate_header": (b"year,month,ice,ice\n2001,1,2,3\n", "more than once"),
 }
@@ -342,6 +367,8 @@ TRAJ_SPOILS: dict[str, tuple[object, str]] = {
     "ensemble_name": (_traj_rows("ensemble median,s1,r1,1993,1.0", "ensemble median"),
                       "reserved"),
     "duplicate_header": (b"model,scenario,year,value,value\nA,s,2001,1,2\n", "more than once"),
+    "value_decimal_comma_quoted": (_traj_rows('Alpha,s1,r1,1993,"1,5"'),
+                                   "mixes decimal commas"),
 }
 
 

@@ -9,7 +9,7 @@ from coldindex.qc import freezing_point_c, run_qc, year_hashes
 def raw(rows):
     df = pd.DataFrame(rows, columns=["year", "station", "lat", "lon", "bottom_c"]).astype(str)
     df = df.replace("None", "")
-    df.insert(0, "row", np.arange(1, len(df) + 1))
+    df.insert(0, "row", np.arange(2, len(df) + 2))  # as the reader numbers them
     return df
 
 
@@ -91,7 +91,7 @@ def test_year_hashes_ignore_row_order_but_see_values():
 
 def _raw_dated(rows):
     df = pd.DataFrame(rows, columns=["year", "station", "lat", "lon", "bottom_c", "date"])
-    df.insert(0, "row", range(1, len(df) + 1))
+    df.insert(0, "row", range(2, len(df) + 2))
     return df
 
 
@@ -122,3 +122,15 @@ def test_unnamed_casts_on_the_same_day_at_one_position_are_duplicates():
     flags = run_qc(_raw_dated(rows)).table["flag"].tolist()
     # The first two differ only below 1 km and in the last digits: a conflict (values differ).
     assert flags[:2] == ["duplicate_conflict", "duplicate_conflict"] and flags[2] == "ok"
+
+
+def test_duplicate_details_name_the_rows_a_spreadsheet_shows(tmp_path):
+    from coldindex.io.readers import read_casts
+
+    p = tmp_path / "casts.csv"
+    p.write_text("year;station;lat;lon;bottom_c\n2001;A;60,5;179,5;1,0\n\n"
+                 "2001;A;60,5;179,5;1,0\n2001;B;60,6;179,5;1,0\n2001;B;60,6;179,5;1,5\n")
+    t = run_qc(read_casts(p)).table.set_index("row")
+    assert t.loc[4, "flag"] == "duplicate_copy" and "identical to row 2" in t.loc[4, "detail"]
+    assert t.loc[2, "flag"] == "ok"
+    assert t.loc[5, "detail"].startswith("rows 5, 6 share station B")

@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import re
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -19,7 +20,7 @@ import pandas as pd
 import xarray as xr
 
 from coldindex.domain import Domain, domain_from_geojson
-from coldindex.errors import InputError, os_error_sentence
+from coldindex.errors import ConfigError, InputError, os_error_sentence
 from coldindex.schema import CASTS, ICE, TRAJECTORIES, Table
 
 _DELIMITERS = ",;\t|"
@@ -29,6 +30,26 @@ OBSERVED_YEARS = (1800, 2300)  # Common practice, no single source: plausible su
 TRAJECTORY_YEARS = (1800, 2500)  # model runs reach 2300 and beyond; 2500 is a generous cap
 MAX_ABS_VALUE = 1e15  # larger magnitudes are corrupt data, not measurements (cap, no source)
 SUMMARY_ROW_NAMES = ("ensemble median", "ensemble", "all", "summary")  # rows we add ourselves
+
+DECIMAL_OPTION = "decimal"
+"""How messages spell the decimal-mark option unless ``option_names`` says otherwise."""
+DATE_FORMAT_OPTION = "date_format"
+"""How messages spell the date-format option unless ``option_names`` says otherwise."""
+
+FIRST_DATA_ROW = 2
+"""Row number of the first data row: rows are numbered as a spreadsheet shows the file,
+the header being row 1 (blank lines count, as a spreadsheet shows them)."""
+
+# A number written with a decimal comma (``-1,25``, ``,5``, ``1,5E-3``), and one written with
+# a decimal point; plain integers are neither and read the same under both marks.
+_COMMA_DECIMAL = re.compile(r"[-+]?\d*,\d+(?:[eE][-+]?\d+)?")
+_POINT_DECIMAL = re.compile(r"[-+]?(?:\d+\.\d*|\.\d+)(?:[eE][-+]?\d+)?")
+# Day and month in either order, a four-digit year, optionally a time: 10.01.2019,
+# 1/10/2019 14:30, 10-01-2019T06:00:00. ISO dates (year first) are not of this form.
+_DAY_MONTH_YEAR = re.compile(r"(\d{1,2})([./-])(\d{1,2})\2(\d{4})"
+                             r"(?:[ T](\d{1,2}):(\d{2})(?::(\d{2}))?)?")
+_TWO_DIGIT_YEAR = re.compile(r"\d{1,2}([./-])\d{1,2}\1\d{2}(?:[ T].*)?")
+_TIME_DIRECTIVES = ("%H", "%I", "%M", "%S", "%X", "%c", "%T", "%p", "%f")
 
 
 def _check_file(path: Path) -> None:
@@ -121,17 +142,72 @@ def _decode(path: Path, data: bytes) -> str:
 def _sniff_delimiter(path: Path, text: str) -> str:
     lines = [ln for ln in text.splitlines() if ln.strip()][:50]
     header = lines[0] if lines else ""
+    in_header = [d for d in _DELIMITERS if d in header]
     try:
-        return csv.Sniffer().sniff("\n".join(lines), delimiters=_DELIMITERS).delimiter
+        sep = csv.Sniffer().sniff("\n".join(lines), delimiters=_DELIMITERS).delimiter
     except csv.Error:
-        found = [d for d in _DELIMITERS if d in header]
-        if len(found) == 1:
-            return found[0]
-        if not found:
+        if len(in_header) == 1:
+            return in_header[0]
+        if not in_header:
             return ","
         raise InputError(f"{path}: cannot tell the delimiter of the header row (it holds "
-                         f"{' and '.join(repr(d) for d in found)}); save the file with commas "
-                         "between columns.") from None
+                         f"{' and '.join(repr(d) for d in in_header)}); save the file with "
+                         "commas between columns.") from None
+    # Decimal commas in the data rows may look like a delimiter; the header row has none.
+    if sep not in header and len(in_header) == 1:
+        return in_header[0]
+    return sep
+
+
+def _row_numbers(text: str, sep: str, n: int) -> np.ndarray:
+    """Row numbers of the ``n`` data rows as a spreadsheet shows the file (header = row 1).
+
+    Blank lines count (a spreadsheet shows them as empty rows) but hold no data; a
+    quoted value spanning lines is one row.
+    """
+    try:
+        records = csv.reader(io.StringIO(text), delimiter=sep, skipinitialspace=True)
+        rows = [i for i, rec in enumerate(records, 1)
+                if len(rec) > 1 or (len(rec) == 1 and rec[0].strip())]
+    except csv.Error:  # pandas read it; numbering by position is the next best
+        rows = []
+    if len(rows) == n + 1:
+        return np.asarray(rows[1:], dtype=int)
+    return np.arange(FIRST_DATA_ROW, n + FIRST_DATA_ROW)
+
+
+def _read_text(path: Path) -> tuple[pd.DataFrame, str]:
+    _check_file(path)
+    text = _decode(path, _read_bytes(path))
+    if not text.strip():
+        raise InputError(f"{path} is empty; give a file with a header row and data rows.")
+    sep = _sniff_delimiter(path, text)
+    try:
+        df = pd.read_csv(io.StringIO(text), sep=sep, dtype=str, keep_default_na=False,
+                         skip_blank_lines=True, skipinitialspace=True)
+    except (pd.errors.ParserError, ValueError) as exc:
+        detail = str(exc).strip()
+    else:
+        # Rows that all hold more fields than the header would silently become an index.
+        detail = "" if isinstance(df.index, pd.RangeIndex) else \
+            "the data rows hold more fields than the header"
+    if detail:
+        hint = (" (a number with a decimal comma splits into two fields unless quoted; save "
+                "the file with semicolons between columns)" if sep == "," else "")
+        raise InputError(f"{path} cannot be parsed as a table ({detail}); check that every "
+                         f"row has as many fields as the header{hint}.")
+    df.columns = [str(c).strip() for c in df.columns]
+    first = next(ln for ln in text.splitlines() if ln.strip())
+    header = next(csv.reader(io.StringIO(first), delimiter=sep))
+    names = [h.strip() for h in header]
+    dup = next((h for i, h in enumerate(names) if h and h in names[:i]), None)
+    if dup is not None:
+        raise InputError(f"{path}: the header {dup!r} appears more than once; rename or remove "
+                         "the extra column.")
+    if df.empty:
+        raise InputError(f"{path} has a header but no data rows.")
+    df.index = pd.Index(_row_numbers(text, sep, len(df)), name="row")
+    return df.apply(lambda s: s.str.strip()), sep
 
 
 def read_text_table(path: Path) -> pd.DataFrame:
@@ -145,30 +221,11 @@ def read_text_table(path: Path) -> pd.DataFrame:
     Returns
     -------
     pandas.DataFrame
-        All values as stripped strings, blanks as ``""``; headers stripped.
+        All values as stripped strings, blanks as ``""``; headers stripped; the index is
+        each row's number as a spreadsheet shows it (header = row 1, so the first data
+        row is 2).
     """
-    _check_file(path)
-    text = _decode(path, _read_bytes(path))
-    if not text.strip():
-        raise InputError(f"{path} is empty; give a file with a header row and data rows.")
-    sep = _sniff_delimiter(path, text)
-    try:
-        df = pd.read_csv(io.StringIO(text), sep=sep, dtype=str, keep_default_na=False,
-                         skip_blank_lines=True, skipinitialspace=True)
-    except (pd.errors.ParserError, ValueError) as exc:
-        raise InputError(f"{path} cannot be parsed as a table ({str(exc).strip()}); check "
-                         "that every row has as many fields as the header.") from None
-    df.columns = [str(c).strip() for c in df.columns]
-    first = next(ln for ln in text.splitlines() if ln.strip())
-    header = next(csv.reader(io.StringIO(first), delimiter=sep))
-    names = [h.strip() for h in header]
-    dup = next((h for i, h in enumerate(names) if h and h in names[:i]), None)
-    if dup is not None:
-        raise InputError(f"{path}: the header {dup!r} appears more than once; rename or remove "
-                         "the extra column.")
-    if df.empty:
-        raise InputError(f"{path} has a header but no data rows.")
-    return df.apply(lambda s: s.str.strip())
+    return _read_text(path)[0]
 
 
 def _read_parquet(path: Path) -> pd.DataFrame:
@@ -184,7 +241,209 @@ def _read_parquet(path: Path) -> pd.DataFrame:
         s = df[col]
         text = s.astype(str).where(s.notna(), "")
         out[str(col).strip()] = text.str.strip()
-    return out.reset_index(drop=True)
+    # Numbered as the same table exported to CSV would be: header row 1, data from row 2.
+    out.index = pd.Index(np.arange(FIRST_DATA_ROW, len(out) + FIRST_DATA_ROW), name="row")
+    return out
+
+
+def _option(option_names: Mapping[str, str] | None, key: str, default: str) -> str:
+    return (option_names or {}).get(key, default)
+
+
+def _first_hit(df: pd.DataFrame, masks: Mapping[str, pd.Series]) -> tuple[int, str, str]:
+    """Row number, column and value of the first row (by number) where a mask is true."""
+    hits = [(int(m[m].index[0]), k, c) for k, (c, m) in enumerate(masks.items()) if m.any()]
+    row, _, col = min(hits)  # the first row; in it, the leftmost column
+    return row, col, str(df.at[row, col])
+
+
+def decimal_marks(df: pd.DataFrame, columns: Sequence[str], path: object,
+                  sep: str | None = None, decimal: str | None = None,
+                  option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+    """Rewrite numbers written with a decimal comma (``1,5``) with a point (``1.5``).
+
+    Parameters
+    ----------
+    df
+        Values as strings, indexed by row number.
+    columns
+        The numeric columns (others are left alone).
+    path
+        The file, for messages.
+    sep
+        The file's delimiter (None for Parquet).
+    decimal
+        ``","`` or ``"."`` as given, or None to detect: numbers are read with a decimal
+        comma when some are written ``-?d,d`` and none with a decimal point.
+    option_names
+        How messages spell the options (``{"decimal": "--decimal"}``); default
+        :data:`DECIMAL_OPTION`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        A copy with comma decimals rewritten (unchanged with ``decimal="."``).
+
+    Raises
+    ------
+    InputError
+        A file mixing decimal commas and points; decimal commas in a comma-delimited file
+        when the mark was not given (a quoted ``"1,234"`` may be a thousands separator);
+        a decimal point in a file whose mark was given as a comma.
+    """
+    opt = _option(option_names, "decimal", DECIMAL_OPTION)
+    if decimal not in (None, ".", ","):
+        raise ConfigError(f"{opt} needs to be '.' or ',', got: {decimal!r}.")
+    cols = [c for c in columns if c in df.columns]
+    if decimal == "." or not cols:
+        return df
+    comma = {c: df[c].astype(str).str.fullmatch(_COMMA_DECIMAL) for c in cols}
+    if not any(m.any() for m in comma.values()) and decimal is None:
+        return df
+    point = {c: df[c].astype(str).str.fullmatch(_POINT_DECIMAL) for c in cols}
+    n_comma = sum(int(m.sum()) for m in comma.values())
+    n_point = sum(int(m.sum()) for m in point.values())
+    if decimal == "," and n_point:
+        r, c, v = _first_hit(df, point)
+        raise InputError(f"{path}, row {r}: column {c!r} holds {v!r} with a decimal point, "
+                         f"but {opt} says the decimal mark is a comma; fix the value or the "
+                         "option.")
+    if decimal is None and n_point:
+        rare, common = (point, comma) if n_point <= n_comma else (comma, point)
+        r, c, v = _first_hit(df, rare)
+        r2, c2, v2 = _first_hit(df, common)
+        raise InputError(f"{path}, row {r}: column {c!r} holds {v!r} while row {r2} (column "
+                         f"{c2!r}) holds {v2!r}, so the file mixes decimal commas and decimal "
+                         "points; write every number with the same decimal mark.")
+    if decimal is None and sep == ",":
+        r, c, v = _first_hit(df, comma)
+        raise InputError(f"{path}, row {r}: column {c!r} holds {v!r}, a quoted number with a "
+                         "comma in a comma-separated file, which may be a decimal comma or a "
+                         f"thousands separator; give the decimal mark ({opt}, e.g. ',') or "
+                         "save the file with semicolons between columns.")
+    out = df.copy()
+    for c, m in comma.items():
+        if m.any():
+            out.loc[m, c] = out.loc[m, c].str.replace(",", ".", regex=False)
+    return out
+
+
+def _has_time(fmt: str) -> bool:
+    return any(d in fmt for d in _TIME_DIRECTIVES)
+
+
+def normalise_dates(df: pd.DataFrame, columns: Sequence[str], path: object,
+                    date_format: str | None = None,
+                    option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+    """Rewrite the dates of ``columns`` as ISO 8601 (``YYYY-MM-DD``, ``THH:MM:SS`` if timed).
+
+    Parameters
+    ----------
+    df
+        Values as strings, indexed by row number.
+    columns
+        The date columns (others are left alone).
+    path
+        The file, for messages.
+    date_format
+        An explicit ``strptime`` format (e.g. ``"%d.%m.%Y"``) that every non-blank date must
+        follow; None to detect. Detection: ISO dates (year first) are kept; dates written
+        day, month and a four-digit year in either order, separated by ``.``, ``/`` or
+        ``-``, are read day first when some first field exceeds 12 and month first when
+        some second field does. Dot-separated dates are usually day first in Europe, but
+        that is detected, not assumed.
+    option_names
+        How messages spell the options (``{"date_format": "--date-format"}``); default
+        :data:`DATE_FORMAT_OPTION`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        A copy with those dates rewritten; blanks and other forms left as they are.
+
+    Raises
+    ------
+    InputError
+        A date that does not follow ``date_format``; when detecting: every day and month
+        12 or less (the order cannot be told), both orders present, a two-digit year, or a
+        day or month out of range under the order found.
+    """
+    opt = _option(option_names, "date_format", DATE_FORMAT_OPTION)
+    out = df
+    for col in (c for c in columns if c in df.columns):
+        text = df[col].astype(str).str.strip()
+        given = text.ne("")
+        if not given.any():
+            continue
+        if date_format is not None:
+            try:
+                when = pd.to_datetime(text.where(given), format=date_format, errors="coerce")
+            except (ValueError, TypeError) as exc:
+                raise ConfigError(f"{opt} {date_format!r} is not a date format "
+                                  f"({str(exc).strip()}); write it for strptime, e.g. "
+                                  "%d.%m.%Y.") from None
+            bad = given & when.isna()
+            if bad.any():
+                r = int(bad[bad].index[0])
+                raise InputError(f"{path}, row {r}: column {col!r} holds {text[r]!r}, which "
+                                 f"does not follow the date format {date_format!r} ({opt}); "
+                                 "fix the value or the format.")
+            iso = when.dt.strftime("%Y-%m-%dT%H:%M:%S" if _has_time(date_format)
+                                   else "%Y-%m-%d")
+        else:
+            short = text.str.fullmatch(_TWO_DIGIT_YEAR)
+            if short.any():
+                r = int(short[short].index[0])
+                raise InputError(f"{path}, row {r}: column {col!r} holds {text[r]!r}, a date "
+                                 "with a two-digit year; write four-digit years or give the "
+                                 f"date format ({opt}, e.g. %d.%m.%y).")
+            parts = text.str.extract("^" + _DAY_MONTH_YEAR.pattern + "$")
+            found = parts[0].notna()
+            if not found.any():
+                continue
+            p = parts[found]
+            first, second = p[0].astype(int), p[2].astype(int)
+            day_first, month_first = first.gt(12), second.gt(12)
+            if day_first.any() and month_first.any():
+                r1, r2 = int(day_first[day_first].index[0]), int(month_first[month_first]
+                                                                 .index[0])
+                raise InputError(f"{path}: column {col!r} holds {text[r1]!r} (row {r1}, day "
+                                 f"first) and {text[r2]!r} (row {r2}, month first); write "
+                                 f"every date in one order or give the date format ({opt}, "
+                                 "e.g. %d.%m.%Y).")
+            if not (day_first.any() or month_first.any()):
+                r = int(p.index[0])
+                raise InputError(f"{path}: every date in column {col!r} (e.g. {text[r]!r}, "
+                                 f"row {r}) has its day and month both 12 or less, so "
+                                 "day-first and month-first cannot be told apart; give the "
+                                 f"date format ({opt}, e.g. %d.%m.%Y or %m/%d/%Y).")
+            day, month = (first, second) if day_first.any() else (second, first)
+            timed = p[4].notna()
+            stamp = (p[3] + "-" + month.map("{:02d}".format) + "-" + day.map("{:02d}".format)
+                     + ("T" + p[4].fillna("0").str.zfill(2) + ":" + p[5].fillna("00") + ":"
+                        + p[6].fillna("00")).where(timed, ""))
+            check = pd.to_datetime(stamp, format="ISO8601", errors="coerce")
+            bad_date = check.isna()
+            if bad_date.any():
+                r = int(bad_date[bad_date].index[0])
+                order = "day first" if day_first.any() else "month first"
+                raise InputError(f"{path}, row {r}: column {col!r} holds {text[r]!r}, which is "
+                                 f"not a date when read {order} as the other dates in the "
+                                 "column are; fix the value.")
+            iso = text.copy()
+            iso[found] = stamp
+        if out is df:
+            out = df.copy()
+        out[col] = iso.where(given, text)
+    return out
+
+
+def _numeric_names(table: Table) -> list[str]:
+    return [c.name for c in table.columns if c.kind in ("int", "float")]
+
+
+def _date_names(table: Table) -> list[str]:
+    return [c.name for c in table.columns if c.kind == "date"]
 
 
 def map_columns(df: pd.DataFrame, mapping: Mapping[str, str], table: Table, path: Path,
@@ -232,7 +491,9 @@ def map_columns(df: pd.DataFrame, mapping: Mapping[str, str], table: Table, path
 
 
 def read_table(path: Path, table: Table, mapping: Mapping[str, str] | None = None,
-               option: str = "--columns") -> pd.DataFrame:
+               option: str = "--columns", *, decimal: str | None = None,
+               date_format: str | None = None,
+               option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
     """Read a CSV or Parquet table, map headers and check required columns.
 
     Parameters
@@ -240,56 +501,97 @@ def read_table(path: Path, table: Table, mapping: Mapping[str, str] | None = Non
     path
         The file (``.parquet``/``.pq`` read as Parquet, anything else as text).
     table
-        Schema table to validate against.
+        Schema table to validate against; its ``int``/``float`` columns are numbers and
+        its ``date`` columns dates.
     mapping
         Header mapping ``{ours: theirs}``.
     option
         Option name to suggest in messages.
+    decimal
+        Decimal mark of the numbers, ``"."`` or ``","``; None detects it
+        (:func:`decimal_marks`).
+    date_format
+        ``strptime`` format of the dates; None detects the order (:func:`normalise_dates`).
+    option_names
+        How messages spell the ``decimal`` and ``date_format`` options.
 
     Returns
     -------
     pandas.DataFrame
-        String values, our column names, and ``row`` (1 = first data row).
+        String values (numbers with a decimal point, dates in ISO 8601), our column
+        names, and ``row``: the row as a spreadsheet shows the file (header = row 1, so
+        the first data row is 2).
     """
     _check_file(path)
+    sep: str | None = None
     if path.suffix.lower() in (".parquet", ".pq"):
         df = _read_parquet(path)
     else:
-        df = read_text_table(path)
+        df, sep = _read_text(path)
     df = map_columns(df, mapping or {}, table, path, option)
-    df.insert(0, "row", np.arange(1, len(df) + 1))
+    df = decimal_marks(df, _numeric_names(table), path, sep, decimal, option_names)
+    df = normalise_dates(df, _date_names(table), path, date_format, option_names)
+    df.insert(0, "row", df.index.to_numpy(dtype=int))
     return df.reset_index(drop=True)
 
 
-def read_casts(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataFrame:
-    """Read a casts file (see :data:`coldindex.schema.CASTS`)."""
-    return read_table(path, CASTS, mapping, "--columns")
+def read_casts(path: Path, mapping: Mapping[str, str] | None = None, *,
+               decimal: str | None = None, date_format: str | None = None,
+               option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+    """Read a casts file (see :data:`coldindex.schema.CASTS`).
+
+    ``decimal``, ``date_format`` and ``option_names`` as in :func:`read_table`: numbers
+    with a decimal comma are read as such, and ``date`` is rewritten as ISO 8601 with the
+    day-month order detected (or given).
+    """
+    return read_table(path, CASTS, mapping, "--columns", decimal=decimal,
+                      date_format=date_format, option_names=option_names)
 
 
 def _numbers(df: pd.DataFrame, col: str) -> pd.Series:
     return pd.to_numeric(df[col].astype(str).str.strip().replace("", np.nan), errors="coerce")
 
 
-def read_ice(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataFrame:
+def _check_months(df: pd.DataFrame, path: object) -> None:
+    text = df["month"].astype(str).str.strip()
+    month = _numbers(df, "month")
+    with np.errstate(invalid="ignore"):
+        bad = ~(month.between(1, 12) & (month == month.round()))
+    if bad.any():
+        r = df.loc[bad, "row"].iloc[0]
+        raise InputError(f"{path}, row {r}: column 'month' holds {text[bad].iloc[0]!r}, not a "
+                         "calendar month 1..12; fix the value.")
+
+
+def read_ice(path: Path, mapping: Mapping[str, str] | None = None, *,
+             decimal: str | None = None,
+             option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
     """Read a monthly ice file (see :data:`coldindex.schema.ICE`).
 
-    Years must lie in :data:`OBSERVED_YEARS` and values be of plausible size
-    (finite, ``|x| <=`` :data:`MAX_ABS_VALUE`); the row is named otherwise.
+    Years must lie in :data:`OBSERVED_YEARS`, months be whole numbers 1..12, and values
+    be of plausible size (finite, ``|x| <=`` :data:`MAX_ABS_VALUE`); the row is named
+    otherwise. ``decimal`` and ``option_names`` as in :func:`read_table`.
     """
-    df = read_table(path, ICE, mapping, "--ice-columns")
+    df = read_table(path, ICE, mapping, "--ice-columns", decimal=decimal,
+                    option_names=option_names)
     _check_years(_numbers(df, "year"), df["row"], path, "year", OBSERVED_YEARS)
+    _check_months(df, path)
     _check_magnitude(_numbers(df, "ice"), df["row"], path, "ice")
     return df
 
 
-def read_trajectories(path: Path, mapping: Mapping[str, str] | None = None) -> pd.DataFrame:
+def read_trajectories(path: Path, mapping: Mapping[str, str] | None = None, *,
+                      decimal: str | None = None,
+                      option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
     """Read a trajectories file (see :data:`coldindex.schema.TRAJECTORIES`).
 
     Years must lie in :data:`TRAJECTORY_YEARS`, values be of plausible size, and
     model and scenario names be non-blank and differ from the summary rows the
-    projection adds (:data:`SUMMARY_ROW_NAMES`).
+    projection adds (:data:`SUMMARY_ROW_NAMES`). ``decimal`` and ``option_names`` as in
+    :func:`read_table`.
     """
-    df = read_table(path, TRAJECTORIES, mapping, "--trajectory-columns")
+    df = read_table(path, TRAJECTORIES, mapping, "--trajectory-columns", decimal=decimal,
+                    option_names=option_names)
     _check_years(_numbers(df, "year"), df["row"], path, "year", TRAJECTORY_YEARS)
     _check_magnitude(_numbers(df, "value"), df["row"], path, "value")
     _check_names(df, path)
@@ -424,7 +726,8 @@ def check_netcdf(path: Path, option: str) -> None:
 
 
 def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None,
-                option: str = "--columns") -> pd.DataFrame:
+                option: str = "--columns", *, decimal: str | None = None,
+                option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
     """Read a yearly series: ``year`` and the value column (and its ``_sd`` when present).
 
     Parameters
@@ -437,6 +740,10 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
         Header mapping ``{ours: theirs}``; ``year`` and ``value`` names may be mapped.
     option
         Option name used in messages.
+    decimal
+        Decimal mark, ``"."`` or ``","``; None detects it (:func:`decimal_marks`).
+    option_names
+        How messages spell the ``decimal`` option.
 
     Returns
     -------
@@ -445,8 +752,11 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
         has ``<value>_sd``; sorted by year.
     """
     _check_file(path)
-    df = _read_parquet(path) if path.suffix.lower() in (".parquet", ".pq") else \
-        read_text_table(path)
+    sep: str | None = None
+    if path.suffix.lower() in (".parquet", ".pq"):
+        df = _read_parquet(path)
+    else:
+        df, sep = _read_text(path)
     rename = {theirs: ours for ours, theirs in (mapping or {}).items()}
     for theirs in rename:
         if theirs not in df.columns:
@@ -458,25 +768,26 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
             raise InputError(f"{path} has no column {col!r}; pick one with --value or map it "
                              f"with {option} {col}=YOUR_HEADER (columns present: "
                              f"{', '.join(map(str, df.columns))}).")
+    df = decimal_marks(df, ["year", value, f"{value}_sd"], path, sep, decimal, option_names)
+    rows = pd.Series(df.index.to_numpy(dtype=int), index=df.index)
     years = pd.to_numeric(df["year"], errors="coerce")
     with np.errstate(invalid="ignore"):
         bad_year = years.isna() | ~np.isfinite(years) | (years != years.round())
     if bad_year.any():
-        bad = int(np.flatnonzero(bad_year)[0]) + 1
-        raise InputError(f"{path}, data row {bad}: column 'year' needs a whole year, got: "
-                         f"{df['year'].iloc[bad - 1]!r}.")
-    _check_years(years, pd.Series(np.arange(1, len(df) + 1), index=df.index), path, "year",
-                 OBSERVED_YEARS)
+        r = rows[bad_year].iloc[0]
+        raise InputError(f"{path}, row {r}: column 'year' needs a whole year, got: "
+                         f"{df['year'][bad_year].iloc[0]!r}.")
+    _check_years(years, rows, path, "year", OBSERVED_YEARS)
     text = df[value].astype(str).str.strip()
     blank = text.eq("") | text.str.lower().isin(["na", "nan", "null", "none", "-"])
     vals = pd.to_numeric(text.where(~blank), errors="coerce")
     with np.errstate(invalid="ignore"):
         bad_mask = ~blank & (vals.isna() | ~(vals.abs() <= MAX_ABS_VALUE))
     if bad_mask.any():
-        bad = int(np.flatnonzero(bad_mask)[0]) + 1
-        raise InputError(f"{path}, data row {bad}: column {value!r} needs a finite number of "
+        r = rows[bad_mask].iloc[0]
+        raise InputError(f"{path}, row {r}: column {value!r} needs a finite number of "
                          f"plausible size (|x| <= {MAX_ABS_VALUE:g}) or a blank, got: "
-                         f"{df[value].iloc[bad - 1]!r}.")
+                         f"{df[value][bad_mask].iloc[0]!r}.")
     if not vals.notna().any():
         raise InputError(f"{path}: column {value!r} holds no value (every row is blank); "
                          "give a series with values.")
