@@ -37,6 +37,8 @@ from coldindex.interpolate import (
     idw_predict,
     weighted_summaries,
 )
+from coldindex.parallel import YearPool
+from coldindex.progress import ProgressEvent, emit
 from coldindex.regions import RegionWeights, node_weights
 from coldindex.schema import area_column, indices_table, regions_table
 
@@ -199,6 +201,34 @@ def _family_score(xy: FloatArray, z: FloatArray, family: str, drift: FloatArray 
     return float(np.mean(err**2)), fit
 
 
+def family_scores(xy: FloatArray, z: FloatArray, drift: FloatArray | None,
+                  method: str = "reml") -> list[tuple[float, Fit | None]]:
+    """One year's score and fit for every family of :data:`FAMILIES`, in that order.
+
+    The score is ``-2 log L`` for likelihood fits and the leave-one-out mean squared
+    error [°C²] for ``wls``; ``inf`` (and no fit) where the family cannot be fitted.
+    """
+    return [_family_score(xy, z, fam, drift, method) for fam in FAMILIES]
+
+
+def pick_family(per_year: Sequence[Sequence[tuple[float, Fit | None]]], method: str = "reml"
+                ) -> tuple[str, dict[str, float], list[Fit | None]]:
+    """Pool the years' :func:`family_scores`; pick the best family (:func:`choose_family`)."""
+    scores: dict[str, float] = {}
+    fits: dict[str, list[Fit | None]] = {}
+    for j, fam in enumerate(FAMILIES):
+        vals = [r[j][0] for r in per_year]
+        fits[fam] = [r[j][1] for r in per_year]
+        if not vals:
+            scores[fam] = float("inf")
+        elif method == "wls":
+            scores[fam] = float(np.sqrt(np.mean(vals)))
+        else:
+            scores[fam] = float(np.sum(vals))
+    best = min(FAMILIES, key=lambda f: (scores[f], FAMILIES.index(f)))
+    return best, scores, fits[best]
+
+
 def choose_family(samples: Sequence[tuple[FloatArray, FloatArray, FloatArray | None]],
                   method: str = "reml") -> tuple[str, dict[str, float], list[Fit | None]]:
     """Choose the variogram family that fits the usable years best.
@@ -221,30 +251,23 @@ def choose_family(samples: Sequence[tuple[FloatArray, FloatArray, FloatArray | N
         The family, the score of every family (``-2 log L`` summed over years, or
         RMSE [°C]), and the chosen family's fit for each sample (reused, not refitted).
     """
-    scores: dict[str, float] = {}
-    fits: dict[str, list[Fit | None]] = {}
-    for fam in FAMILIES:
-        results = [_family_score(xy, z, fam, d, method) for xy, z, d in samples]
-        vals = [r[0] for r in results]
-        fits[fam] = [r[1] for r in results]
-        if not vals:
-            scores[fam] = float("inf")
-        elif method == "wls":
-            scores[fam] = float(np.sqrt(np.mean(vals)))
-        else:
-            scores[fam] = float(np.sum(vals))
-    best = min(FAMILIES, key=lambda f: (scores[f], FAMILIES.index(f)))
-    return best, scores, fits[best]
+    return pick_family([family_scores(xy, z, d, method) for xy, z, d in samples], method)
 
 
 def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: IndexOptions,
                     bathymetry: tuple[FloatArray, FloatArray, FloatArray] | None = None,
                     frozen_family: str | None = None,
-                    progress: Callable[[int], None] | None = None,
+                    progress: Callable[[ProgressEvent], None] | None = None,
                     frozen_spacing_km: float | None = None,
                     regions: RegionWeights | None = None,
-                    frozen_reference_day: float | None = None) -> IndexResult:
+                    frozen_reference_day: float | None = None,
+                    workers: int = 1, scheduler: str | None = None) -> IndexResult:
     """Compute the yearly indices from quality-controlled casts.
+
+    The variogram-family fits and the per-year work (:func:`index_year`) run on
+    ``workers`` local processes or a dask scheduler; where they run changes no number
+    (each year's simulations are seeded by ``SeedSequence([seed, year])``, and BLAS
+    runs one thread a task in every mode: :mod:`coldindex.parallel`).
 
     Parameters
     ----------
@@ -263,7 +286,9 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         A variogram family frozen by an earlier run; used when ``options.variogram``
         is ``auto``.
     progress
-        Called with each year when it is done.
+        Called with a :class:`coldindex.progress.ProgressEvent` as each stage opens
+        (``family`` when the family is chosen, then ``years``) and as each of its
+        years finishes; in this process, in finishing order.
     frozen_spacing_km
         Reference station spacing frozen by an earlier run [km]; None computes it
         from these casts (:func:`reference_spacing`).
@@ -274,6 +299,13 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
     frozen_reference_day
         Reference survey day frozen by an earlier run (``options.timing_drift``); None
         takes ``options.reference_day`` or, when that is 0, the median survey day.
+    workers
+        Local worker processes for the years (1: all in this process). An execution
+        setting: the results are the same for any value.
+    scheduler
+        Address of a dask.distributed scheduler to run the years on instead, or
+        ``"local"`` for a ``LocalCluster`` of ``workers`` processes; None for local
+        processes (:class:`coldindex.parallel.YearPool`).
 
     Returns
     -------
@@ -307,22 +339,18 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         day_cells = np.full(len(cell_area), ref_day)
         drift_cells = (day_cells if drift_cells is None
                        else np.column_stack([drift_cells, day_cells]))
-    drift_cols = [c for c in ("drift", "day") if c in casts.columns]
+    drift_cols = tuple(c for c in ("drift", "day") if c in casts.columns)
     by_year = _year_casts(casts)
     years = sorted(by_year)
 
-    def arrays(g: pd.DataFrame) -> tuple[FloatArray, FloatArray, FloatArray | None]:
-        d = g[drift_cols].to_numpy(float) if drift_cols else None
-        return g[["x_km", "y_km"]].to_numpy(float), g["bottom_c"].to_numpy(float), d
-
     # Screen years first: casts and coverage decide which years get indices.
-    spacings = {yr: station_spacing_km(*arrays(by_year[yr])[0].T) for yr in years}
+    spacings = {yr: station_spacing_km(*_arrays(by_year[yr], drift_cols)[0].T) for yr in years}
     ref = (float(frozen_spacing_km) if frozen_spacing_km is not None
            else reference_spacing(list(spacings.values())))
     screen: dict[int, tuple[float, str]] = {}
     for yr in years:
         g = by_year[yr]
-        xy, _, _ = arrays(g)
+        xy, _, _ = _arrays(g, drift_cols)
         cov = coverage_share(xy, cell_xy, cell_area, ref) if len(g) >= 2 else 0.0
         note = ""
         if len(g) < options.min_casts:
@@ -334,122 +362,79 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
         screen[yr] = (cov, note)
     usable = [yr for yr in years if not screen[yr][1]]
 
+    with_sims = options.sims > 0 and options.method == "kriging"
+    surface = _surface_years(casts, options.min_casts) if options.method == "kriging" else set()
+    shared = YearShared(grid=grid, cell_xy=cell_xy, cell_area=cell_area,
+                        drift_cells=drift_cells, options=options,
+                        drift_cols=drift_cols, timing=timing, ref_day=ref_day,
+                        regions=regions, with_sims=with_sims)
     family = options.variogram
     scores: dict[str, float] = {}
     fitted: dict[int, Fit] = {}
-    if options.method == "idw":
-        family = "idw"
-    elif options.per_year_family:
-        family = "per-year"
-    elif family == "auto":
-        if frozen_family is not None:
-            family = frozen_family
-        elif usable:
-            family, scores, fits = choose_family([arrays(by_year[yr]) for yr in usable],
-                                                 options.fit)
-            fitted = {yr: f for yr, f in zip(usable, fits, strict=True) if f is not None}
-        else:
-            family = FAMILIES[0]
+    with YearPool(shared, workers=min(workers, max(len(usable), 1)),
+                  scheduler=scheduler) as pool:
+        if options.method == "idw":
+            family = "idw"
+        elif options.per_year_family:
+            family = "per-year"
+        elif family == "auto":
+            if frozen_family is not None:
+                family = frozen_family
+            elif usable:
+                emit(progress, "family", 0, len(usable))
+                done = [0]
 
-    with_sims = options.sims > 0 and options.method == "kriging"
-    surface = _surface_years(casts, options.min_casts) if options.method == "kriging" else set()
+                def family_done(i: int, _: object) -> None:
+                    done[0] += 1
+                    emit(progress, "family", done[0], len(usable), usable[i])
+
+                per_year = pool.map(_family_task,
+                                    [_arrays(by_year[yr], drift_cols) for yr in usable],
+                                    family_done)
+                family, scores, fits = pick_family(per_year, options.fit)
+                fitted = {yr: f for yr, f in zip(usable, fits, strict=True) if f is not None}
+            else:
+                family = FAMILIES[0]
+        tasks = [YearTask(year=yr, casts=by_year[yr], coverage=screen[yr][0],
+                          note=screen[yr][1], family=family, fit=fitted.get(yr),
+                          surface=yr in surface)
+                 for yr in years]
+        emit(progress, "years", 0, len(years))
+        finished = [0]
+        by_result: dict[int, YearResult] = {}
+
+        def year_done(r: YearResult) -> None:
+            by_result[r.year] = r
+            finished[0] += 1
+            emit(progress, "years", finished[0], len(years), r.year)
+
+        # Years without indices cost nothing: they stay here rather than travel.
+        for t in tasks:
+            if t.note:
+                year_done(index_year(shared, t))
+        pool.map(index_year, [t for t in tasks if not t.note], lambda _, r: year_done(r))
+
     table = indices_table(options.thresholds, with_sims=with_sims, with_timing=timing,
                           with_surface=bool(surface))
     rows = []
     region_rows: list[dict[str, object]] = []
-    region_w = regions.weights if regions is not None else None
     outliers: list[pd.DataFrame] = []
     draws: dict[int, SimSummaries] = {}
     m = len(cell_area)
     est_all = np.full((len(years), m), np.nan)
     sd_all = np.full((len(years), m), np.nan)
     for k, yr in enumerate(years):
-        g = by_year[yr]
-        xy, z, drift = arrays(g)
-        cov, note = screen[yr]
-        row: dict[str, object] = {"year": yr, "n_casts": len(g),
-                                  "median_doy": float(g["doy"].median()),
-                                  "coverage": round(cov, 4), "note": note}
-        if not note:
-            if options.method == "idw":
-                est = idw_predict(xy, z, cell_xy)
-                err = idw_loo(xy, z)
-                row.update(cv_rmse_c=float(np.sqrt(np.mean(err**2))),
-                           cv_bias_c=float(np.mean(err)), variogram="idw(power=2,k=12)",
-                           note="idw: areas are map areas; no uncertainty")
-                row["bottom_mean_c"] = area_weighted_mean(est, cell_area)
-                for t in options.thresholds:
-                    a = area_below(est, None, cell_area, t)
-                    row[area_column(t)] = a
-                    row[area_column(t) + "_map"] = a
-                est_all[k] = est
-                if regions is not None:
-                    region_rows += _region_rows(yr, regions, est, None, options.thresholds,
-                                                None, "idw: areas are map areas")
-            else:
-                fam = family
-                if options.per_year_family:
-                    fam, _, per_year = choose_family([(xy, z, drift)], options.fit)
-                    if per_year[0] is not None:
-                        fitted[yr] = per_year[0]
-                fit = fitted.get(yr) or fit_variogram(xy, z, fam, drift, method=options.fit)
-                kr = Kriging(xy, z, fit.variogram, drift)
-                flagged = spatial_outliers(kr, options.outlier_z)
-                if flagged.any():
-                    # Fit, flag, refit: an outlier inflates the fit that judges it.
-                    out = g.loc[flagged, ["row", "year", "station"]].copy()
-                    out["z"] = standardized_loo(kr)[flagged]
-                    outliers.append(out)
-                    g = g.loc[~flagged]
-                    xy, z, drift = arrays(g)
-                    row["n_casts"] = len(g)
-                    row["median_doy"] = float(g["doy"].median())
-                    fit = fit_variogram(xy, z, fit.variogram.family, drift, method=options.fit)
-                    kr = Kriging(xy, z, fit.variogram, drift)
-                vg: Variogram = fit.variogram
-                est, var, _ = kr.predict(cell_xy, drift_cells)
-                assert var is not None
-                sd = np.sqrt(var)
-                err, err_var = kr.loo()
-                notes = [f"variogram {n}" for n in fit.at_bound]
-                if flagged.any():
-                    notes.append(f"{int(flagged.sum())} spatial outlier"
-                                 f"{'s' if flagged.sum() > 1 else ''} kept out of the fit "
-                                 f"(|z| > {options.outlier_z:g})")
-                row.update(cv_rmse_c=float(np.sqrt(np.mean(err**2))),
-                           cv_bias_c=float(np.mean(err)),
-                           cv_msse=float(np.mean(err**2 / err_var)),
-                           variogram=vg.describe())
-                if timing and ref_day is not None:
-                    rate = float(kr.beta[-1])  # the survey-day column is the last drift
-                    row["timing_rate_c_per_day"] = rate
-                    row["timing_adjustment_c"] = rate * (ref_day - float(g["day"].median()))
-                row["bottom_mean_c"] = area_weighted_mean(est, cell_area)
-                for t in options.thresholds:
-                    row[area_column(t)] = area_below(est, sd, cell_area, t)
-                    row[area_column(t) + "_map"] = area_below(est, None, cell_area, t)
-                sims: SimSummaries | None = None
-                if with_sims:
-                    rng = np.random.default_rng(np.random.SeedSequence([options.seed, yr]))
-                    sims = simulate_summaries(kr, fit, xy, z, drift, grid, cell_xy, cell_area,
-                                              drift_cells, options, rng, region_w)
-                    draws[yr] = sims
-                    row["simulation"] = sims.method
-                    if sims.note:
-                        notes.append(sims.note)
-                    _put_intervals(row, sims.means, sims.areas, options.thresholds)
-                if yr in surface:
-                    notes += _surface_indices(row, g, xy, vg.family, cell_xy, cell_area,
-                                              options)
-                row["note"] = "; ".join(notes)
-                if regions is not None:
-                    region_rows += _region_rows(yr, regions, est, sd, options.thresholds, sims,
-                                                "")
-                est_all[k] = est
-                sd_all[k] = sd
-        rows.append(row)
-        if progress is not None:
-            progress(yr)
+        r = by_result[yr]
+        rows.append(r.row)
+        region_rows += r.region_rows
+        if r.outliers is not None:
+            outliers.append(r.outliers)
+        if r.sims is not None:
+            draws[yr] = r.sims
+        if r.est is not None:
+            est_all[k] = r.est
+        if r.sd is not None:
+            sd_all[k] = r.sd
     df = pd.DataFrame(rows).reindex(columns=table.names)
     reg_df = None
     if regions is not None:
@@ -474,6 +459,226 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
                        reference_spacing_km=ref, fit_method=options.fit,
                        reference_day=ref_day, regions=reg_df,
                        outliers=out_df, draws=draws)
+
+
+@dataclass(frozen=True)
+class YearShared:
+    """What every year's work shares: grid, cells, options and the run's choices.
+
+    Sent once to each worker (:class:`coldindex.parallel.YearPool`), not with every year.
+
+    Attributes
+    ----------
+    grid
+        The equal-area grid (the simulations need its lattice).
+    cell_xy, cell_area
+        Active cell centres, (m, 2) [km], and areas, (m,) [km²].
+    drift_cells
+        External drift at the cells (depth, and/or the reference day), or None.
+    options
+        Index settings.
+    drift_cols
+        The casts' drift columns, in the order of ``drift_cells``' columns.
+    timing
+        Whether the survey day is a drift.
+    ref_day
+        The reference survey day with ``timing``. [day of the survey year]
+    regions
+        Regions and depth zones, or None.
+    with_sims
+        Whether conditional simulations run.
+    """
+
+    grid: Grid
+    cell_xy: FloatArray
+    cell_area: FloatArray
+    drift_cells: FloatArray | None
+    options: IndexOptions
+    drift_cols: tuple[str, ...]
+    timing: bool
+    ref_day: float | None
+    regions: RegionWeights | None
+    with_sims: bool
+
+
+@dataclass(frozen=True)
+class YearTask:
+    """One survey year's own inputs.
+
+    Attributes
+    ----------
+    year
+        Survey year; with ``options.seed`` it seeds the year's simulations.
+    casts
+        The year's casts, with ``x_km``, ``y_km`` and any drift columns.
+    coverage
+        Coverage share of the year, 0..1.
+    note
+        Why the year gets no indices; empty when it does.
+    family
+        The variogram family (``per-year``: chosen for the year; ``idw``: none).
+    fit
+        The family choice's fit of this year, reused rather than refitted; or None.
+    surface
+        Whether the year has enough surface temperatures for surface indices.
+    """
+
+    year: int
+    casts: pd.DataFrame
+    coverage: float
+    note: str
+    family: str = FAMILIES[0]
+    fit: Fit | None = None
+    surface: bool = False
+
+
+@dataclass
+class YearResult:
+    """One survey year's results.
+
+    Attributes
+    ----------
+    year
+        Survey year.
+    row
+        The year's ``indices.csv`` row.
+    est, sd
+        Mapped bottom temperature and its standard deviation at the active cells
+        (None where not mapped; ``sd`` None for IDW). [°C]
+    region_rows
+        The year's ``regions.csv`` rows.
+    outliers
+        Casts flagged as spatial outliers (``row``, ``year``, ``station``, ``z``), or None.
+    sims
+        The per-realization summaries, or None without simulations.
+    """
+
+    year: int
+    row: dict[str, object]
+    est: FloatArray | None = None
+    sd: FloatArray | None = None
+    region_rows: list[dict[str, object]] = field(default_factory=list)
+    outliers: pd.DataFrame | None = None
+    sims: SimSummaries | None = None
+
+
+def _arrays(g: pd.DataFrame, drift_cols: Sequence[str]
+            ) -> tuple[FloatArray, FloatArray, FloatArray | None]:
+    """Positions [km], bottom temperatures [°C] and drift columns of some casts."""
+    d = g[list(drift_cols)].to_numpy(float) if drift_cols else None
+    return g[["x_km", "y_km"]].to_numpy(float), g["bottom_c"].to_numpy(float), d
+
+
+def _family_task(shared: YearShared,
+                 sample: tuple[FloatArray, FloatArray, FloatArray | None]
+                 ) -> list[tuple[float, Fit | None]]:
+    """:func:`family_scores` of one year, as a task of :class:`coldindex.parallel.YearPool`."""
+    return family_scores(*sample, method=shared.options.fit)
+
+
+def index_year(shared: YearShared, task: YearTask) -> YearResult:
+    """Everything one survey year gets: fit, outlier refit, kriging, LOO, areas, simulations.
+
+    A module-level function of plain inputs, so it runs the same in this process, in a
+    worker process or on a dask worker; the simulations draw from
+    ``SeedSequence([options.seed, year])``, so the result does not depend on where or
+    in which order the years run.
+
+    Parameters
+    ----------
+    shared
+        Grid, cells, options and the run's choices.
+    task
+        The year's casts, screening and any reusable fit.
+
+    Returns
+    -------
+    YearResult
+        The year's row, maps, region rows, outliers and simulation summaries.
+    """
+    options, yr, g = shared.options, task.year, task.casts
+    cell_xy, cell_area, drift_cells = shared.cell_xy, shared.cell_area, shared.drift_cells
+    regions = shared.regions
+    xy, z, drift = _arrays(g, shared.drift_cols)
+    row: dict[str, object] = {"year": yr, "n_casts": len(g),
+                              "median_doy": float(g["doy"].median()),
+                              "coverage": round(task.coverage, 4), "note": task.note}
+    if task.note:
+        return YearResult(year=yr, row=row)
+    if options.method == "idw":
+        est = idw_predict(xy, z, cell_xy)
+        err = idw_loo(xy, z)
+        row.update(cv_rmse_c=float(np.sqrt(np.mean(err**2))),
+                   cv_bias_c=float(np.mean(err)), variogram="idw(power=2,k=12)",
+                   note="idw: areas are map areas; no uncertainty")
+        row["bottom_mean_c"] = area_weighted_mean(est, cell_area)
+        for t in options.thresholds:
+            a = area_below(est, None, cell_area, t)
+            row[area_column(t)] = a
+            row[area_column(t) + "_map"] = a
+        region_rows = ([] if regions is None else
+                       _region_rows(yr, regions, est, None, options.thresholds, None,
+                                    "idw: areas are map areas"))
+        return YearResult(year=yr, row=row, est=est, region_rows=region_rows)
+    fam = task.family
+    fit0 = task.fit
+    if options.per_year_family:
+        fam, _, per_year = choose_family([(xy, z, drift)], options.fit)
+        if per_year[0] is not None:
+            fit0 = per_year[0]
+    fit = fit0 or fit_variogram(xy, z, fam, drift, method=options.fit)
+    kr = Kriging(xy, z, fit.variogram, drift)
+    flagged = spatial_outliers(kr, options.outlier_z)
+    outliers = None
+    if flagged.any():
+        # Fit, flag, refit: an outlier inflates the fit that judges it.
+        outliers = g.loc[flagged, ["row", "year", "station"]].copy()
+        outliers["z"] = standardized_loo(kr)[flagged]
+        g = g.loc[~flagged]
+        xy, z, drift = _arrays(g, shared.drift_cols)
+        row["n_casts"] = len(g)
+        row["median_doy"] = float(g["doy"].median())
+        fit = fit_variogram(xy, z, fit.variogram.family, drift, method=options.fit)
+        kr = Kriging(xy, z, fit.variogram, drift)
+    vg: Variogram = fit.variogram
+    est, var, _ = kr.predict(cell_xy, drift_cells)
+    assert var is not None
+    sd = np.sqrt(var)
+    err, err_var = kr.loo()
+    notes = [f"variogram {n}" for n in fit.at_bound]
+    if flagged.any():
+        notes.append(f"{int(flagged.sum())} spatial outlier"
+                     f"{'s' if flagged.sum() > 1 else ''} kept out of the fit "
+                     f"(|z| > {options.outlier_z:g})")
+    row.update(cv_rmse_c=float(np.sqrt(np.mean(err**2))),
+               cv_bias_c=float(np.mean(err)),
+               cv_msse=float(np.mean(err**2 / err_var)),
+               variogram=vg.describe())
+    if shared.timing and shared.ref_day is not None:
+        rate = float(kr.beta[-1])  # the survey-day column is the last drift
+        row["timing_rate_c_per_day"] = rate
+        row["timing_adjustment_c"] = rate * (shared.ref_day - float(g["day"].median()))
+    row["bottom_mean_c"] = area_weighted_mean(est, cell_area)
+    for t in options.thresholds:
+        row[area_column(t)] = area_below(est, sd, cell_area, t)
+        row[area_column(t) + "_map"] = area_below(est, None, cell_area, t)
+    sims: SimSummaries | None = None
+    if shared.with_sims:
+        rng = np.random.default_rng(np.random.SeedSequence([options.seed, yr]))
+        sims = simulate_summaries(kr, fit, xy, z, drift, shared.grid, cell_xy, cell_area,
+                                  drift_cells, options, rng,
+                                  regions.weights if regions is not None else None)
+        row["simulation"] = sims.method
+        if sims.note:
+            notes.append(sims.note)
+        _put_intervals(row, sims.means, sims.areas, options.thresholds)
+    if task.surface:
+        notes += _surface_indices(row, g, xy, vg.family, cell_xy, cell_area, options)
+    row["note"] = "; ".join(notes)
+    region_rows = ([] if regions is None else
+                   _region_rows(yr, regions, est, sd, options.thresholds, sims, ""))
+    return YearResult(year=yr, row=row, est=est, sd=sd, region_rows=region_rows,
+                      outliers=outliers, sims=sims)
 
 
 def _surface_years(casts: pd.DataFrame, min_casts: int) -> set[int]:
