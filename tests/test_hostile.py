@@ -192,8 +192,8 @@ SERIES_SPOILS: dict[str, tuple[object, str]] = {
     "value_1e308": (_series_rows(bad_value="1e308").encode(), "plausible size"),
     "value_minus_1e308": (_series_rows(bad_value="-1e308").encode(), "plausible size"),
     "value_text": (_series_rows(bad_value="abc").encode(), "finite number"),
-    "value_decimal_comma_quoted": (_series_rows(bad_value='"1,5"').encode(),
-                                   "mixes decimal commas"),
+    "value_decimals_mixed": (_series_rows().replace(",", ";").replace(  # points, one comma
+        "1997;190;1.20;", "1997;190;1,20;").encode(), "mixes decimal commas"),
     "all_blank": ((SERIES_HEAD + "".join(f"{1990 + i},190,,0.1,5\n" for i in range(30))).encode(),
                   "holds no value"),
     "duplicate_year": ((SERIES_HEAD + "2001,190,1,0.1,5\n2001,190,2,0.1,5\n").encode(),
@@ -328,7 +328,10 @@ ICE_SPOILS: dict[str, tuple[object, str]] = {
     "month_13": (_ice_rows("1991,13,5.0"), "month"),
     "month_fraction": (_ice_rows("1991,2.5,5.0"), "calendar month 1..12"),
     "month_zero": (_ice_rows("1991,0,5.0"), "calendar month 1..12"),
-    "ice_decimal_comma_quoted": (_ice_rows('1991,2,"5,5"'), "mixes decimal commas"),
+    "ice_decimals_mixed": (("year;month;ice\n" + "".join(  # decimal commas, one point
+        f"{y};{m};{'5.5' if (y, m) == (1991, 2) else '5,0'}\n"
+        for y in range(1990, 2020) for m in (1, 2, 3))).encode("latin-1"),
+        "mixes decimal commas"),
     "negative_ice": (_ice_rows("1991,2,-3"), "negative"),
     "duplicate_header": (b"year,month,ice,ice\n2001,1,2,3\n", "more than once"),
 }
@@ -367,8 +370,9 @@ TRAJ_SPOILS: dict[str, tuple[object, str]] = {
     "ensemble_name": (_traj_rows("ensemble median,s1,r1,1993,1.0", "ensemble median"),
                       "reserved"),
     "duplicate_header": (b"model,scenario,year,value,value\nA,s,2001,1,2\n", "more than once"),
-    "value_decimal_comma_quoted": (_traj_rows('Alpha,s1,r1,1993,"1,5"'),
-                                   "mixes decimal commas"),
+    "value_decimals_mixed": ((TRAJ_HEAD.replace(",", ";") + "".join(  # points, one comma
+        f"Alpha;s1;r1;{y};{'1,5' if y == 1993 else '1.0'}\n" for y in range(1990, 2061))
+        ).encode(), "mixes decimal commas"),
 }
 
 

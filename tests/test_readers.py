@@ -162,6 +162,17 @@ def test_quoted_decimal_comma_in_comma_file(tmp_path: Path):
         read_casts(unquoted)
 
 
+def test_stray_quoted_comma_among_points_is_flagged_not_refused(tmp_path: Path):
+    # A comma file writes decimal points; a stray quoted "1,5" is no number, and its row
+    # is flagged like any other non-number (the file is not refused for one value).
+    p = tmp_path / "c.csv"
+    p.write_text('year,lat,lon,bottom_c\n2001,60.5,179.5,1.2\n2001,60.6,179.5,"1,5"\n')
+    df = read_casts(p)
+    assert df["bottom_c"].tolist() == ["1.2", "1,5"]
+    t = run_qc(df).table.set_index("row")
+    assert t.loc[3, "flag"] == "non_numeric" and t.loc[2, "flag"] == "ok"
+
+
 def test_decimal_comma_in_ice_trajectories_and_series(tmp_path: Path):
     ice = tmp_path / "ice.csv"
     ice.write_text("year;month;ice\n2001;1;5,25\n2001;2;6\n")

@@ -287,9 +287,11 @@ def decimal_marks(df: pd.DataFrame, columns: Sequence[str], path: object,
     Raises
     ------
     InputError
-        A file mixing decimal commas and points; decimal commas in a comma-delimited file
-        when the mark was not given (a quoted ``"1,234"`` may be a thousands separator);
-        a decimal point in a file whose mark was given as a comma.
+        A file (not comma-delimited) mixing decimal commas and points; a comma-delimited
+        file whose numbers are all quoted with commas when the mark was not given (a
+        quoted ``"1,234"`` may be a thousands separator; among decimal points such a value
+        is left as it is, for quality control to flag); a decimal point in a file whose
+        mark was given as a comma.
     """
     opt = _option(option_names, "decimal", DECIMAL_OPTION)
     if decimal not in (None, ".", ","):
@@ -308,6 +310,10 @@ def decimal_marks(df: pd.DataFrame, columns: Sequence[str], path: object,
         raise InputError(f"{path}, row {r}: column {c!r} holds {v!r} with a decimal point, "
                          f"but {opt} says the decimal mark is a comma; fix the value or the "
                          "option.")
+    if decimal is None and n_point and sep == ",":
+        # A comma-delimited file writes decimal points; a quoted "1,5" among them is no
+        # number, and quality control flags its row like any other.
+        return df
     if decimal is None and n_point:
         rare, common = (point, comma) if n_point <= n_comma else (comma, point)
         r, c, v = _first_hit(df, rare)
