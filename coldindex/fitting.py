@@ -48,14 +48,16 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.linalg as sla
 from numpy.typing import ArrayLike, NDArray
+from scipy.linalg.lapack import dpotrf as _potrf
+from scipy.linalg.lapack import dpotrs as _potrs
+from scipy.linalg.lapack import dtrtrs as _trtrs
 from scipy.optimize import minimize
 from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
 from coldindex.errors import TooFewDataError
-from coldindex.interpolate import Variogram, correlation, drift_matrix
+from coldindex.interpolate import Variogram, correlation_inplace, drift_matrix
 
 FloatArray = NDArray[np.float64]
 
@@ -137,6 +139,8 @@ class _Profile:
     def __init__(self, xy: FloatArray, z: FloatArray, F: FloatArray, family: str,
                  restricted: bool) -> None:
         self.D = cdist(xy, xy)
+        self._buf = np.empty_like(self.D)  # the correlation matrix, then its factor
+        self._fz = np.asfortranarray(np.column_stack([F, z]))
         self.z = z
         self.F = F
         self.family = family
@@ -151,29 +155,38 @@ class _Profile:
         self.w_hi = 1.0 - GAUSSIAN_MIN_NUGGET_SHARE if family == "gaussian" else 1.0
 
     def evaluate(self, len_scale: float, share: float) -> tuple[float, float]:
-        """``-2 log L`` (profiled, up to a constant) and ``q / dof`` at one point."""
-        V = correlation(self.family, self.D / len_scale)
+        """``-2 log L`` (profiled, up to a constant) and ``q / dof`` at one point.
+
+        One Cholesky factorisation and one triangular solve with the drift and
+        the data stacked, called through LAPACK directly into a buffer kept
+        between evaluations (a search makes hundreds of them on the same casts).
+        """
+        n, p = self.n, self.p
+        V = self._buf
+        np.divide(self.D, len_scale, out=V)
+        correlation_inplace(self.family, V)
         V *= share
-        V[np.diag_indices(self.n)] += (1.0 - share) + _JITTER
-        try:
-            L = sla.cholesky(V, lower=True, check_finite=False)
-        except np.linalg.LinAlgError:
+        V.flat[:: n + 1] += (1.0 - share) + _JITTER
+        # V is symmetric: its C-ordered memory is V itself in Fortran order.
+        L, info = _potrf(V.T, lower=1, clean=0, overwrite_a=1)
+        if info != 0:
             return float("inf"), float("nan")
-        LiF = sla.solve_triangular(L, self.F, lower=True, check_finite=False)
-        Liz = sla.solve_triangular(L, self.z, lower=True, check_finite=False)
+        X, info = _trtrs(L, self._fz, lower=1)
+        if info != 0:
+            return float("inf"), float("nan")
+        LiF, Liz = X[:, :p], X[:, p]
         G = LiF.T @ LiF
-        try:
-            cG = sla.cholesky(G, lower=True, check_finite=False)
-        except np.linalg.LinAlgError:
+        cG, info = _potrf(G, lower=1, clean=1)
+        if info != 0:
             return float("inf"), float("nan")
-        beta = sla.cho_solve((cG, True), LiF.T @ Liz, check_finite=False)
+        beta, _ = _potrs(cG, LiF.T @ Liz, lower=1)
         r = Liz - LiF @ beta
         q = float(r @ r)
         if not q > 0:
             return float("inf"), float("nan")
-        val = self.dof * np.log(q / self.dof) + 2.0 * np.sum(np.log(np.diag(L)))
+        val = self.dof * np.log(q / self.dof) + 2.0 * np.sum(np.log(np.diagonal(L)))
         if self.restricted:
-            val += 2.0 * np.sum(np.log(np.diag(cG)))
+            val += 2.0 * np.sum(np.log(np.diagonal(cG)))
         return float(val), q / self.dof
 
 
