@@ -1,28 +1,34 @@
-"""The command line: parses options, calls the pipeline, prints, maps errors to exit codes.
+"""The command line: reads flags into the options models, runs a stage, prints, exits.
 
-Every user-facing failure ends with one sentence on stderr and a non-zero exit
-code; no traceback is shown for them.
+Every command turns its flags into :mod:`coldindex.config` models first (so a bad
+value is refused before any work, naming the flag), calls the stage's run function
+in :mod:`coldindex.pipeline` (the same one the yearly update calls), writes the
+stage's files through :mod:`coldindex.io.writers` and prints. Every user-facing
+failure ends with one sentence on stderr and a non-zero exit code; no traceback.
+Heavy libraries are imported inside the commands, so ``--help`` answers at once.
 """
 
 from __future__ import annotations
 
 import functools
+import sys
 from collections.abc import Callable
 from pathlib import Path
-from typing import Annotated, Any, TypeVar
+from typing import TYPE_CHECKING, Annotated, Any, TypeVar
 
 import click
-import pandas as pd
 import typer
 from rich.console import Console
 from rich.markup import escape
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
-from rich.table import Table
 from rich.text import Text
 
+from coldindex import config as C
 from coldindex._version import __version__
-from coldindex.config import IndexOptions, parse_column_map
-from coldindex.errors import ColdindexError
+from coldindex.config import parse_column_map
+from coldindex.errors import ColdindexError, Naming, key_naming
+
+if TYPE_CHECKING:
+    from coldindex.pipeline import StageRun
 
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Cold-pool and bottom-temperature indicators from survey casts. "
@@ -51,6 +57,10 @@ class PlainConsole(Console):
 out_console = PlainConsole()
 err_console = PlainConsole(stderr=True)
 F = TypeVar("F", bound=Callable[..., Any])
+# Defaults, shown by --help, come from the options models and from nowhere else.
+IX, RD, CL, SH, SK, PJ, PR, IF = (C.IndexOptions(), C.ReadOptions(), C.ClassifyConfig(),
+                                  C.ShiftsConfig(), C.SkillConfig(), C.ProjectConfig(),
+                                  C.ProfileOptions(), C.IceFieldsOptions())
 
 
 def _error(message: str) -> None:
@@ -59,45 +69,50 @@ def _error(message: str) -> None:
                       soft_wrap=True, highlight=False)
 
 
-def _guard(func: F) -> F:
+def _guard(naming: Naming = C.flag_naming) -> Callable[[F], F]:
     """Turn every failure into one sentence on stderr and a non-zero exit code.
 
-    Exit codes: 2 bad input or settings, 3 an output cannot be written (disk full,
-    read-only, permission), 4 another update holds the folder, 5 out of memory or
-    an unforeseen failure, 130 interrupted. No traceback is shown.
+    Options are named as flags on a single command and as config keys inside
+    ``update`` (``naming``). Exit codes: 2 bad input or settings, 3 an output cannot
+    be written (disk full, read-only, permission), 4 another update holds the folder,
+    5 out of memory or an unforeseen failure, 130 interrupted. No traceback is shown.
     """
 
-    @functools.wraps(func)
-    def wrapper(*args: Any, **kwargs: Any) -> Any:
-        from coldindex.errors import os_error_sentence
+    def decorate(func: F) -> F:
+        @functools.wraps(func)
+        def wrapper(*args: Any, **kwargs: Any) -> Any:
+            from coldindex.errors import os_error_sentence
 
-        command = func.__name__
-        try:
-            return func(*args, **kwargs)
-        except (typer.Exit, click.exceptions.ClickException, click.exceptions.Abort):
-            raise
-        except ColdindexError as exc:
-            _error(str(exc))
-            raise typer.Exit(exc.exit_code) from None
-        except MemoryError:
-            _error(f"coldindex {command} ran out of memory; use a coarser --grid-km, fewer "
-                   "simulations or thresholds, or a larger machine (no output was replaced).")
-            raise typer.Exit(5) from None
-        except OSError as exc:
-            _error(os_error_sentence(exc, f"coldindex {command}: accessing").rstrip(".")
-                   + " (no output was replaced).")
-            raise typer.Exit(3) from None
-        except KeyboardInterrupt:
-            _error("Interrupted; no partial output was left behind.")
-            raise typer.Exit(130) from None
-        except Exception as exc:  # a library error the input checks did not foresee
-            text = " ".join(str(exc).split())[:200]
-            _error(f"coldindex {command} stopped on an unforeseen {type(exc).__name__}"
-                   f"{' (' + text + ')' if text else ''}; no output was replaced; check the "
-                   "inputs and settings, or report this together with them.")
-            raise typer.Exit(5) from None
+            command = func.__name__
+            try:
+                return func(*args, **kwargs)
+            except (typer.Exit, click.exceptions.ClickException, click.exceptions.Abort):
+                raise
+            except ColdindexError as exc:
+                _error(exc.render(naming))
+                raise typer.Exit(exc.exit_code) from None
+            except MemoryError:
+                _error(f"coldindex {command} ran out of memory; use a coarser grid, fewer "
+                       "simulations or thresholds, or a larger machine (no output was "
+                       "replaced).")
+                raise typer.Exit(5) from None
+            except OSError as exc:
+                _error(os_error_sentence(exc, f"coldindex {command}: accessing").rstrip(".")
+                       + " (no output was replaced).")
+                raise typer.Exit(3) from None
+            except KeyboardInterrupt:
+                _error("Interrupted; no partial output was left behind.")
+                raise typer.Exit(130) from None
+            except Exception as exc:  # a library error the input checks did not foresee
+                text = " ".join(str(exc).split())[:200]
+                _error(f"coldindex {command} stopped on an unforeseen {type(exc).__name__}"
+                       f"{' (' + text + ')' if text else ''}; no output was replaced; check "
+                       "the inputs and settings, or report this together with them.")
+                raise typer.Exit(5) from None
 
-    return wrapper  # type: ignore[return-value]
+        return wrapper  # type: ignore[return-value]
+
+    return decorate
 
 
 def _version(value: bool) -> None:
@@ -114,17 +129,13 @@ def main_options(
     """Cold-pool and bottom-temperature indicators from survey casts."""
 
 
-def _thresholds(text: str) -> tuple[float, ...]:
-    from coldindex.config import ConfigError
+def _h(model: type, key: str, extra: str = "") -> str:
+    """The help text of a flag: its option's description in the model."""
+    return (model.model_fields[key].description or "") + extra  # type: ignore[attr-defined]
 
-    try:
-        values = tuple(float(v) for v in text.split(",") if v.strip())
-    except ValueError:
-        raise ConfigError(f"--thresholds needs numbers separated by commas, got: "
-                          f"{text!r}.") from None
-    if not values:
-        raise ConfigError("--thresholds needs at least one threshold.")
-    return values
+
+def _text(values: tuple) -> str:
+    return ",".join(f"{v:g}" if isinstance(v, float) else str(v) for v in values)
 
 
 ColumnsOpt = Annotated[str | None, typer.Option(
@@ -133,8 +144,6 @@ ColumnsOpt = Annotated[str | None, typer.Option(
 DomainOpt = Annotated[Path | None, typer.Option(
     "--domain", help="Domain polygon (GeoJSON, lon/lat). Without it a domain is derived from "
     "the stations sampled in most years, written out, and reused next time.")]
-
-
 ProfilesOpt = Annotated[Path | None, typer.Option(
     "--profiles", help="Profiles instead of a casts file: CF profile NetCDF (featureType "
     "profile) or a long CSV/Parquet table, one sample a row; casts.csv (one bottom value a "
@@ -142,19 +151,26 @@ ProfilesOpt = Annotated[Path | None, typer.Option(
 ProfileColumnsOpt = Annotated[str | None, typer.Option(
     "--profile-columns", help="Map the profile table's headers to ours: ours=theirs,... e.g. "
     "cast=CastID,temperature_c=TEMP,pressure_dbar=PRES.")]
-MaxGapOpt = Annotated[float, typer.Option(
-    "--max-gap-m", help="Profiles: the deepest good sample may lie at most this far above the "
-    "sea floor (recorded bottom depth, else --bathymetry).")]
-AverageOpt = Annotated[float, typer.Option(
-    "--average-m", help="Profiles: average the good samples this far above the deepest "
-    "(0 = the deepest alone).")]
+MaxGapOpt = Annotated[float, typer.Option(help=_h(C.ProfileOptions, "max_gap_m"))]
+AverageOpt = Annotated[float, typer.Option(help=_h(C.ProfileOptions, "average_m"))]
+DecimalOpt = Annotated[str, typer.Option(help=_h(C.ReadOptions, "decimal"))]
+DateFormatOpt = Annotated[str, typer.Option(help=_h(C.ReadOptions, "date_format"))]
+WorkersOpt = Annotated[int, typer.Option(
+    help="Worker processes for the survey years (0 = one a core); the results do not depend "
+         "on it.")]
+SchedulerOpt = Annotated[str | None, typer.Option(
+    help="Run the survey years on a dask.distributed scheduler (tcp://host:port) instead of "
+         "local processes; the results do not depend on it.")]
+ProgressOpt = Annotated[bool | None, typer.Option(
+    "--progress/--no-progress", help="Show progress on stderr (default: when stderr is a "
+    "terminal).")]
 
 
 def _cast_source(casts: Path | None, profiles: Path | None, columns: str | None,
                  profile_columns: str | None, max_gap_m: float, average_m: float
                  ) -> tuple[Path, dict[str, str], Any]:
     """The casts file or the profiles file, its header map and the profile settings."""
-    from coldindex.config import ConfigError, ProfileOptions
+    from coldindex.errors import ConfigError
 
     if (casts is None) == (profiles is None):
         raise ConfigError("Give a casts file or --profiles FILE (one of them, not both).")
@@ -164,22 +180,52 @@ def _cast_source(casts: Path | None, profiles: Path | None, columns: str | None,
             raise ConfigError(f"{casts} is NetCDF, not a casts table; give profiles with "
                               f"--profiles {casts}.")
         return casts, parse_column_map(columns), None
-    try:
-        popts = ProfileOptions(max_gap_m=max_gap_m, average_m=average_m)
-    except ConfigError as exc:
-        raise ConfigError(str(exc).replace("profiles.", "--").replace("_", "-")) from None
+    popts = C.from_flags(C.ProfileOptions, max_gap_m=max_gap_m, average_m=average_m)
     return profiles, parse_column_map(profile_columns, "--profile-columns"), popts
 
 
 def _doy_text(doy: float) -> str:
+    import pandas as pd
+
     if pd.isna(doy):
         return "-"
     date = pd.Timestamp("2001-01-01") + pd.Timedelta(days=float(doy) - 1)
     return f"{date:%d %b}"
 
 
+def _show_progress(flag: bool | None) -> bool:
+    return sys.stderr.isatty() if flag is None else flag
+
+
+def _workers(n: int) -> int:
+    import os
+
+    if n < 0:
+        from coldindex.errors import ConfigError
+
+        raise ConfigError(f"--workers needs to be 0 (one a core) or more, got: {n}.")
+    return n or (len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                 else os.cpu_count() or 1)
+
+
+def _write_stage(out: Path, command: str, run: StageRun, inputs: tuple) -> list[Path]:
+    """Write a single command's stage outputs together (all or none replaced)."""
+    from coldindex.io.writers import plan_outputs, write_outputs
+
+    names = (*run.files, *(f"{n}.png" for n in run.figures))
+    outputs = plan_outputs(out, command, names, inputs)
+    with outputs as o:
+        write_outputs(o.dir, run.files, run.figures)
+    return list(outputs.written)
+
+
+def _wrote(paths: list[Path]) -> None:
+    for p in paths:
+        out_console.print(f"Wrote {p}")
+
+
 @app.command()
-@_guard
+@_guard()
 def check(
     casts: Annotated[Path | None, typer.Argument(
         help="Casts file (CSV or Parquet); or give --profiles.")] = None,
@@ -187,40 +233,38 @@ def check(
     columns: ColumnsOpt = None,
     out: Annotated[Path | None, typer.Option(
         "--out", help="Folder for qc.csv (every input row with its flag).")] = None,
-    min_casts: Annotated[int, typer.Option(help="Casts a year needs to be usable.")] = 30,
+    min_casts: Annotated[int, typer.Option(help=_h(C.IndexOptions, "min_casts"))
+                         ] = IX.min_casts,
     show: Annotated[int, typer.Option(help="Flagged rows to list (0 = none).")] = 40,
     profiles: ProfilesOpt = None,
     profile_columns: ProfileColumnsOpt = None,
     bathymetry: Annotated[Path | None, typer.Option(
         help="Profiles: bathymetry NetCDF for casts without a recorded bottom depth.")] = None,
-    max_gap_m: MaxGapOpt = 10.0,
-    average_m: AverageOpt = 0.0,
-    outlier_z: Annotated[float, typer.Option(
-        help="Spatial-outlier threshold on |z|, the leave-one-out standardized residual from "
-             "each year's variogram fit (years with --min-casts casts; 0 = off).")
-    ] = IndexOptions.outlier_z,
+    max_gap_m: MaxGapOpt = PR.max_gap_m,
+    average_m: AverageOpt = PR.average_m,
+    outlier_z: Annotated[float, typer.Option(help=_h(C.IndexOptions, "outlier_z"))
+                         ] = IX.outlier_z,
+    decimal: DecimalOpt = RD.decimal,
+    date_format: DateFormatOpt = RD.date_format,
 ) -> None:
     """Read casts (or profiles), run quality control, and print a per-year summary."""
+    opts = C.from_flags(C.IndexOptions, outlier_z=outlier_z, min_casts=min_casts)
+    read = C.from_flags(C.ReadOptions, decimal=decimal, date_format=date_format)
+    source, mapping, popts = _cast_source(casts, profiles, columns, profile_columns,
+                                          max_gap_m, average_m)
+    from rich.table import Table
+
     from coldindex.io.writers import plan_outputs, write_csv
     from coldindex.pipeline import PROFILE_CASTS_NAME, run_check
 
-    source, mapping, popts = _cast_source(casts, profiles, columns, profile_columns,
-                                          max_gap_m, average_m)
-    casts = source
     names = ("qc.csv",) + ((PROFILE_CASTS_NAME,) if popts else ())
-    outputs = plan_outputs(out, "check", names, (casts, domain, bathymetry)) if out else None
-    from coldindex.config import ConfigError
-
-    try:
-        opts = IndexOptions(outlier_z=outlier_z)
-    except ConfigError as exc:
-        raise ConfigError(str(exc).replace("index.", "--").replace("_", "-")) from None
-    run = run_check(casts, mapping, domain, opts, profiles=popts, bathymetry_path=bathymetry,
-                    outlier_min_casts=min_casts)
+    outputs = plan_outputs(out, "check", names, (source, domain, bathymetry)) if out else None
+    run = run_check(source, mapping, domain, opts, profiles=popts, bathymetry_path=bathymetry,
+                    outlier_min_casts=min_casts, read=read)
     qc = run.qc
     counts = qc.counts_by_year()
     reasons = [c for c in counts.columns if c not in ("ok", "median_doy")]
-    table = Table(title=f"Quality control of {escape(str(casts))}", title_justify="left")
+    table = Table(title=f"Quality control of {escape(str(source))}", title_justify="left")
     table.add_column("year", justify="right")
     table.add_column("used", justify="right")
     for r in reasons:
@@ -251,44 +295,37 @@ def check(
             write_csv(qc.table.drop(columns=["doy"]), o.path("qc.csv"))
             if run.profile_casts is not None:
                 write_csv(run.profile_casts, o.path(PROFILE_CASTS_NAME))
-        for path in outputs.written:
-            out_console.print(f"Wrote {path}")
+        _wrote(outputs.written)
     if (counts["ok"] >= min_casts).sum() == 0:
-        _error(f"no year of {casts} has {min_casts} usable casts; fix the flagged rows or "
-               "lower --min-casts.")
+        _error(f"no year of {source} has {min_casts} usable casts; fix the flagged rows (see "
+               "the table above) or, if the survey is small by design, lower --min-casts.")
         raise typer.Exit(2)
 
 
 @app.command()
-@_guard
+@_guard()
 def index(
     out: Annotated[Path, typer.Option("--out", help="Output folder.")],
     casts: Annotated[Path | None, typer.Argument(
         help="Casts file (CSV or Parquet); or give --profiles.")] = None,
     domain: DomainOpt = None,
-    grid_km: Annotated[float, typer.Option(help="Grid cell side in km.")] = 5.0,
-    thresholds: Annotated[str, typer.Option(help="Thresholds in °C, comma separated.")] = "2,0",
-    sims: Annotated[int, typer.Option(help="Conditional simulations a year (0 = off).")] = 200,
-    seed: Annotated[int, typer.Option(help="Base random seed.")] = IndexOptions.seed,
-    min_casts: Annotated[int, typer.Option(help="Fewest casts for a year's indices.")] = 30,
-    min_coverage: Annotated[float, typer.Option(
-        help="Lowest share of the domain within 1.5 reference station spacings of a cast "
-             "(the reference spacing is frozen with the domain).")] = 0.75,
-    method: Annotated[str, typer.Option(help="kriging or idw.")] = "kriging",
-    variogram: Annotated[str, typer.Option(
-        help="exponential, spherical, matern, gaussian, or auto (chosen by the pooled "
-             "likelihood of the yearly fits, or pooled cross-validation with --fit wls; then "
-             "frozen).")] = "auto",
-    fit: Annotated[str, typer.Option(
-        help="Variogram fit: reml (restricted maximum likelihood, default), ml, or wls "
-             "(least squares on the binned variogram, bins weighted by pair counts).")
-    ] = IndexOptions.fit,
-    param_draws: Annotated[int, typer.Option(
-        help="Variogram parameter draws a year shared by the simulations, so the intervals "
-             "include the variogram's uncertainty (0 = fitted parameters only).")
-    ] = IndexOptions.param_draws,
+    grid_km: Annotated[float, typer.Option(help=_h(C.IndexOptions, "grid_km"))] = IX.grid_km,
+    thresholds: Annotated[str, typer.Option(help=_h(C.IndexOptions, "thresholds"))
+                          ] = _text(IX.thresholds),
+    sims: Annotated[int, typer.Option(help=_h(C.IndexOptions, "sims"))] = IX.sims,
+    seed: Annotated[int, typer.Option(help=_h(C.IndexOptions, "seed"))] = IX.seed,
+    min_casts: Annotated[int, typer.Option(help=_h(C.IndexOptions, "min_casts"))
+                         ] = IX.min_casts,
+    min_coverage: Annotated[float, typer.Option(help=_h(C.IndexOptions, "min_coverage"))
+                            ] = IX.min_coverage,
+    method: Annotated[str, typer.Option(help=_h(C.IndexOptions, "method"))] = IX.method,
+    variogram: Annotated[str, typer.Option(help=_h(C.IndexOptions, "variogram"))
+                         ] = IX.variogram,
+    fit: Annotated[str, typer.Option(help=_h(C.IndexOptions, "fit"))] = IX.fit,
+    param_draws: Annotated[int, typer.Option(help=_h(C.IndexOptions, "param_draws"))
+                           ] = IX.param_draws,
     per_year_family: Annotated[bool, typer.Option(
-        help="Opt in: choose the variogram family separately each year.")] = False,
+        help=_h(C.IndexOptions, "per_year_family"))] = IX.per_year_family,
     bathymetry: Annotated[Path | None, typer.Option(
         help="Bathymetry NetCDF used as external drift.")] = None,
     columns: ColumnsOpt = None,
@@ -296,50 +333,46 @@ def index(
         help="GeoJSON of named regions (a name property per feature; no overlaps): every "
              "index per region in regions.csv, from the same simulations as the domain's.")
     ] = None,
-    depth_zones: Annotated[str, typer.Option(
-        help="Depth zones in metres from the bathymetry, e.g. 0-50,50-100,100-200: every "
-             "index per zone in regions.csv.")] = "",
-    outlier_z: Annotated[float, typer.Option(
-        help="Spatial-outlier threshold on |z|, the leave-one-out standardized residual "
-             "from the year's fit; flagged casts are kept out of the refit (0 = off).")
-    ] = IndexOptions.outlier_z,
-    timing_drift: Annotated[bool, typer.Option(
-        help="Opt in: the survey day (from each cast's date) as an external drift, alone or "
-             "beside the bathymetry; maps and indices are adjusted to --reference-day and the "
-             "fitted rate and the adjustment are written per year.")] = False,
-    reference_day: Annotated[float, typer.Option(
-        help="Day of the survey year the indices are adjusted to with --timing-drift (0 = "
-             "the median survey day of the first run, then frozen).")] = 0.0,
+    depth_zones: Annotated[str, typer.Option(help=_h(C.IndexOptions, "depth_zones"))
+                           ] = IX.depth_zones,
+    outlier_z: Annotated[float, typer.Option(help=_h(C.IndexOptions, "outlier_z"))
+                         ] = IX.outlier_z,
+    timing_drift: Annotated[bool, typer.Option(help=_h(C.IndexOptions, "timing_drift"))
+                            ] = IX.timing_drift,
+    reference_day: Annotated[float, typer.Option(help=_h(C.IndexOptions, "reference_day"))
+                             ] = IX.reference_day,
     profiles: ProfilesOpt = None,
     profile_columns: ProfileColumnsOpt = None,
-    max_gap_m: MaxGapOpt = 10.0,
-    average_m: AverageOpt = 0.0,
+    max_gap_m: MaxGapOpt = PR.max_gap_m,
+    average_m: AverageOpt = PR.average_m,
+    decimal: DecimalOpt = RD.decimal,
+    date_format: DateFormatOpt = RD.date_format,
+    workers: WorkersOpt = 0,
+    scheduler: SchedulerOpt = None,
+    progress: ProgressOpt = None,
 ) -> None:
     """Map bottom temperature each year and compute cold-water areas with uncertainty."""
-    from coldindex.config import ConfigError
-    from coldindex.pipeline import run_index
-
-    try:
-        opts = IndexOptions(thresholds=_thresholds(thresholds), grid_km=grid_km, sims=sims,
-                            seed=seed, min_casts=min_casts, min_coverage=min_coverage,
-                            method=method, variogram=variogram, fit=fit,
-                            param_draws=param_draws, per_year_family=per_year_family,
-                            outlier_z=outlier_z, depth_zones=depth_zones,
-                            timing_drift=timing_drift, reference_day=reference_day)
-    except ConfigError as exc:
-        raise ConfigError(str(exc).replace("index.", "--").replace("_", "-")) from None
+    opts = C.from_flags(C.IndexOptions, thresholds=thresholds, grid_km=grid_km, sims=sims,
+                        seed=seed, min_casts=min_casts, min_coverage=min_coverage,
+                        method=method, variogram=variogram, fit=fit, param_draws=param_draws,
+                        per_year_family=per_year_family, outlier_z=outlier_z,
+                        depth_zones=depth_zones, timing_drift=timing_drift,
+                        reference_day=reference_day)
+    read = C.from_flags(C.ReadOptions, decimal=decimal, date_format=date_format)
     source, mapping, popts = _cast_source(casts, profiles, columns, profile_columns,
                                           max_gap_m, average_m)
-    progress = Progress(TextColumn("[bold]Mapping survey years"), BarColumn(),
-                        MofNCompleteColumn(), TextColumn("{task.description}"),
-                        TimeElapsedColumn(), console=err_console, transient=True)
-    with progress:
-        task = progress.add_task("", total=None)
+    from coldindex.io.files import check_input_files
+
+    check_input_files({k: p for k, p in (("CASTS", source), ("--domain", domain),
+                                         ("--bathymetry", bathymetry),
+                                         ("--regions", regions)) if p is not None})
+    from coldindex.pipeline import run_index
+
+    with _ProgressBar("Mapping survey years", _show_progress(progress)) as bar:
         run = run_index(source, out, opts, mapping, domain, bathymetry,
-                        progress=lambda yr: progress.update(task, advance=1,
-                                                            description=str(yr)),
-                        on_start=lambda n: progress.update(task, total=n),
-                        regions_path=regions, profiles=popts)
+                        progress=bar.advance, on_start=bar.start, regions_path=regions,
+                        profiles=popts, read=read, workers=_workers(workers),
+                        scheduler=scheduler)
     res = run.result
     flagged = int((run.check.qc.table["flag"] != "ok").sum()) + len(res.outliers)
     out_console.print(f"{len(res.years)} years, {len(run.check.qc.casts)} casts used, "
@@ -359,8 +392,51 @@ def index(
         out_console.print(f"{int(r['year'])}: spatial outlier at station {r['station']} "
                           f"(row {int(r['row'])}, z = {r['z']:+.2f}), kept out of the fit.",
                           markup=False)
-    for p in run.written:
-        out_console.print(f"Wrote {p}")
+    _wrote(run.written)
+
+
+class _ProgressBar:
+    """Years done of total, elapsed and remaining time, on stderr (or nothing)."""
+
+    def __init__(self, title: str, show: bool) -> None:
+        self.show, self.title = show, title
+        self.bar: Any = None
+        self.task: Any = None
+
+    def __enter__(self) -> _ProgressBar:
+        if self.show:
+            from rich.progress import (
+                BarColumn,
+                MofNCompleteColumn,
+                Progress,
+                TextColumn,
+                TimeElapsedColumn,
+                TimeRemainingColumn,
+            )
+
+            self.bar = Progress(TextColumn(f"[bold]{self.title}"), BarColumn(),
+                                MofNCompleteColumn(), TextColumn("{task.description}"),
+                                TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
+                                console=err_console, transient=True)
+            self.bar.__enter__()
+            self.task = self.bar.add_task("", total=None)
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        if self.bar is not None:
+            self.bar.__exit__(*exc)
+
+    def start(self, total: int) -> None:
+        if self.bar is not None:
+            self.bar.update(self.task, total=total)
+
+    def advance(self, what: object) -> None:
+        if self.bar is not None:
+            self.bar.update(self.task, advance=1, description=str(what))
+
+    def stage(self, name: str) -> None:
+        if self.bar is not None:
+            self.bar.update(self.task, advance=1, description=name)
 
 
 SeriesArg = Annotated[Path, typer.Argument(help="Yearly series (CSV or Parquet), e.g. "
@@ -369,69 +445,32 @@ ValueOpt = Annotated[str, typer.Option("--value", help="The value column, e.g. b
 OutOpt = Annotated[Path, typer.Option("--out", help="Output folder.")]
 
 
-def _cuts_for(path: Path, value: str) -> Any:
-    """Read a cuts.json and refuse one made for another column."""
-    from coldindex.classify import Cuts
-    from coldindex.io.readers import read_cuts
-
-    c = Cuts.from_dict(read_cuts(path), str(path))
-    if c.column != value:
-        raise ColdindexError(f"{path} holds cut values for {c.column!r}, not {value!r}; derive "
-                             "new ones or give the matching file.")
-    return c
-
-
-def _cut_values(text: str) -> tuple[float, float]:
-    import math
-
-    try:
-        low, high = (float(v) for v in text.split(","))
-    except ValueError:
-        raise ColdindexError(f"--cut-values needs two numbers LOW,HIGH, got: {text!r}.") from None
-    if not (math.isfinite(low) and math.isfinite(high) and abs(low) < 1e15
-            and abs(high) < 1e15):
-        raise ColdindexError(f"--cut-values needs finite numbers LOW,HIGH, got: {text!r}.")
-    if low > high:
-        raise ColdindexError(f"--cut-values needs LOW <= HIGH, got: {text!r}.")
-    return low, high
-
-
 @app.command()
-@_guard
+@_guard()
 def classify(
     series: SeriesArg,
     value: ValueOpt,
     out: OutOpt,
-    cut_values: Annotated[str | None, typer.Option(
-        help="Cut values given outright: LOW,HIGH (in the column's unit).")] = None,
+    cut_values: Annotated[str | None, typer.Option(help=_h(C.ClassifyConfig, "cut_values"))
+                          ] = None,
     cuts: Annotated[Path | None, typer.Option(
         help="Reuse the cut values of an earlier cuts.json.")] = None,
-    rule: Annotated[str, typer.Option(help="tercile or sd:K (mean ± K SD).")] = "tercile",
-    reference: Annotated[str | None, typer.Option(
-        help="Reference period A-B (default: the whole record).")] = None,
-    colder: Annotated[str | None, typer.Option(
-        help="lower or higher: which values are colder (default from the column name).")
-    ] = None,
+    rule: Annotated[str, typer.Option(help=_h(C.ClassifyConfig, "rule"))] = CL.rule,
+    reference: Annotated[str, typer.Option(help=_h(C.ClassifyConfig, "reference"))
+                         ] = CL.reference,
+    colder: Annotated[str, typer.Option(help=_h(C.ClassifyConfig, "colder"))] = CL.colder,
     columns: ColumnsOpt = None,
 ) -> None:
     """Classify each year as cold, average or warm by fixed cut values."""
-    from coldindex import classify as cl
-    from coldindex.io.readers import read_series
-    from coldindex.io.writers import plan_outputs, write_csv, write_json
+    opts = C.from_flags(C.ClassifyConfig, columns=value, cut_values=cut_values, rule=rule,
+                        reference=reference, colder=colder)
+    from rich.table import Table
 
-    if colder is not None and colder not in ("lower", "higher"):
-        raise ColdindexError(f"--colder needs to be lower or higher, got: {colder!r}.")
-    outputs = plan_outputs(out, "classify", ("classes.csv", "cuts.json"), (series, cuts))
-    df = read_series(series, value, parse_column_map(columns))
-    ref = cl.parse_reference(reference)
-    if cuts is not None:
-        c = _cuts_for(cuts, value)
-    elif cut_values is not None:
-        low, high = _cut_values(cut_values)
-        c = cl.Cuts(value, low, high, "given", None, colder or cl.colder_direction(value))
-    else:
-        c = cl.cuts_by_rule(df["year"], df["value"], value, rule, ref, colder)
-    table = cl.classify(df["year"], df["value"], c, df["sd"] if "sd" in df else None, ref)
+    from coldindex.pipeline import read_cuts_for, run_classify
+
+    given = read_cuts_for(cuts, value) if cuts is not None else None
+    run = run_classify(series, value, opts, given, parse_column_map(columns))
+    c, table = run.result, run.files["classes.csv"]
     t = Table(title=escape(f"{value}: cut values {c.low:.4g} and {c.high:.4g} ({c.rule}, "
                            f"{c.reference or 'whole record'}; {c.direction} is colder)"),
               title_justify="left")
@@ -448,56 +487,43 @@ def classify(
     counts = table["class"].value_counts()
     out_console.print(", ".join(f"{counts.get(k, 0)} {k}" for k in ("cold", "average", "warm"))
                       + f" years of {len(table)}.")
-    with outputs as o:
-        write_csv(table, o.path("classes.csv"))
-        write_json(c.to_dict(), o.path("cuts.json"))
-    for p in outputs.written:
-        out_console.print(f"Wrote {p}")
+    _wrote(_write_stage(out, "classify", run, (series, cuts)))
 
 
 @app.command()
-@_guard
+@_guard()
 def shifts(
     series: SeriesArg,
     value: ValueOpt,
     out: OutOpt,
-    method: Annotated[str, typer.Option(help="stars, pelt or both.")] = "both",
-    cutoff: Annotated[int, typer.Option(help="STARS cut-off length (years).")] = 10,
-    alpha: Annotated[float, typer.Option(
-        help="Detection level of STARS itself (the t-test that sets its threshold); the "
-             "verdict is --p-max.")] = 0.1,
-    p_max: Annotated[float, typer.Option(
-        help="Largest family-wise p-value for a shift to survive the red-noise test (both "
-             "methods).")] = 0.05,
-    huber: Annotated[float, typer.Option(help="STARS Huber weight parameter (SD units).")] = 1.0,
-    prewhiten: Annotated[str, typer.Option(help="none, ip4 or mpk.")] = "none",
-    subsample: Annotated[int | None, typer.Option(
-        help="Subsample length for the prewhitening estimate (default (cutoff + 1) / 3, at "
-             "least 5).")] = None,
-    min_size: Annotated[int, typer.Option(help="PELT shortest regime (years).")] = 5,
-    boot: Annotated[int, typer.Option(help="Red-noise bootstrap replicates (0 = off).")] = 999,
-    seed: Annotated[int, typer.Option(help="Random seed of the bootstrap.")] = 20261201,
-    null_window: Annotated[int, typer.Option(
-        help="Window (years) of the shift-robust lag-1 estimate of the bootstrap null.")] = 15,
+    method: Annotated[str, typer.Option(help=_h(C.ShiftsConfig, "method"))] = SH.method,
+    cutoff: Annotated[int, typer.Option(help=_h(C.ShiftsConfig, "cutoff"))] = SH.cutoff,
+    alpha: Annotated[float, typer.Option(help=_h(C.ShiftsConfig, "alpha"))] = SH.alpha,
+    p_max: Annotated[float, typer.Option(help=_h(C.ShiftsConfig, "p_max"))] = SH.p_max,
+    huber: Annotated[float, typer.Option(help=_h(C.ShiftsConfig, "huber"))] = SH.huber,
+    prewhiten: Annotated[str, typer.Option(help=_h(C.ShiftsConfig, "prewhiten"))
+                         ] = SH.prewhiten,
+    subsample: Annotated[int, typer.Option(help=_h(C.ShiftsConfig, "subsample"))
+                         ] = SH.subsample,
+    min_size: Annotated[int, typer.Option(help=_h(C.ShiftsConfig, "min_size"))] = SH.min_size,
+    boot: Annotated[int, typer.Option(help=_h(C.ShiftsConfig, "boot"))] = SH.boot,
+    seed: Annotated[int, typer.Option(help=_h(C.ShiftsConfig, "seed"))] = SH.seed,
+    null_window: Annotated[int, typer.Option(help=_h(C.ShiftsConfig, "null_window"))
+                           ] = SH.null_window,
     columns: ColumnsOpt = None,
 ) -> None:
     """Detect regime shifts (STARS, PELT) with red-noise bootstrap p-values."""
-    from coldindex.io.readers import read_series
-    from coldindex.io.writers import plan_outputs, write_csv
-    from coldindex.regimes import ShiftOptions, detect_shifts
-
-    methods = {"both": ("stars", "pelt"), "stars": ("stars",), "pelt": ("pelt",)}
-    if method not in methods:
-        raise ColdindexError(f"--method needs to be stars, pelt or both, got: {method!r}.")
-    if seed < 0:
-        raise ColdindexError(f"--seed needs to be a whole number >= 0, got: {seed}.")
-    opts = ShiftOptions(cutoff=cutoff, alpha=alpha, huber=huber, prewhiten=prewhiten,
+    opts = C.from_flags(C.ShiftsConfig, column=value, method=method, cutoff=cutoff,
+                        alpha=alpha, p_max=p_max, huber=huber, prewhiten=prewhiten,
                         subsample=subsample, min_size=min_size, boot=boot, seed=seed,
-                        null_window=null_window, p_max=p_max)
-    outputs = plan_outputs(out, "shifts", ("shifts.csv", "regimes.csv"), (series,))
-    df = read_series(series, value, parse_column_map(columns))
+                        null_window=null_window)
+    from rich.table import Table
+
+    from coldindex.pipeline import run_shifts
+
     with err_console.status("Running the red-noise bootstrap..."):
-        res = detect_shifts(df["year"], df["value"], methods[method], opts)
+        run = run_shifts(series, value, opts, parse_column_map(columns))
+    res: Any = run.result
     if res.skipped_years:
         out_console.print(f"Years without a value, closed up before detection: "
                           f"{', '.join(map(str, res.skipped_years))}.")
@@ -524,144 +550,66 @@ def shifts(
     if res.shifts["provisional"].any():
         out_console.print(f"Provisional: fewer than {cutoff} years (--cutoff) of the new regime "
                           "are in the record; the shift may move or vanish as years are added.")
-    with outputs as o:
-        write_csv(res.shifts, o.path("shifts.csv"))
-        write_csv(res.regimes, o.path("regimes.csv"))
-    for p in outputs.written:
-        out_console.print(f"Wrote {p}")
+    _wrote(_write_stage(out, "shifts", run, (series,)))
 
 
 @app.command()
-@_guard
+@_guard()
 def skill(
-    ice: Annotated[Path, typer.Option("--ice", help="Monthly ice file (year, month, ice).")],
+    ice: Annotated[Path, typer.Option("--ice", help="Monthly ice file (year, month, ice), or "
+                                      "the ice_fields.csv of coldindex ice.")],
     target: Annotated[Path, typer.Option("--target", help="Yearly target series, e.g. "
                                          "indices.csv.")],
     value: ValueOpt,
     out: OutOpt,
-    months: Annotated[str, typer.Option(help="Winter months in order, e.g. 11-4 (wraps over "
-                                        "the new year) or 5-10.")] = "11-4",
-    survey_month: Annotated[int | None, typer.Option(
-        help="Month the survey starts (1-12); default: the month of the target's median "
-             "survey day (its median_doy column). A winter is labelled with the year of the "
-             "first survey that starts after the winter's last month, and lag 0 pairs it "
-             "with that survey: a July survey with --months 11-4 puts Nov-Dec of Y in winter "
-             "Y+1; a January survey with --months 5-10 puts May-Oct of Y in winter Y+1.",
-        min=1, max=12)] = None,
-    winter: Annotated[str, typer.Option(help="Winter aggregate: mean or max.")] = "mean",
-    lags: Annotated[str, typer.Option(help="Lags in years, e.g. 0-2: lag L pairs a winter "
-                                      "with the survey L years after the first survey that "
-                                      "follows it (lag 0 = that first survey: the July "
-                                      "survey after a Nov-Apr winter, the January survey "
-                                      "after a May-Oct winter). The hindcast and outlook "
-                                      "choose predictor and lag among these.")] = "0-2",
-    outlook_lag: Annotated[int | None, typer.Option(
-        help="Use only this lag (one of --lags) for the hindcast and outlook; default: "
-             "chosen inside the hindcast folds.", min=0)] = None,
-    outlook_q_max: Annotated[float, typer.Option(
-        help="Largest q-value the chosen predictor may have; above it, or without positive "
-             "cross-validated skill, the outlook is climatological.")] = 0.1,
-    confidence: Annotated[float, typer.Option(help="Confidence of intervals.")] = 0.9,
-    reference: Annotated[str | None, typer.Option(
-        help="Reference period A-B for anomalies, cut values and the climatological "
-             "outlook.")] = None,
+    months: Annotated[str, typer.Option(help=_h(C.SkillConfig, "months"))] = SK.months,
+    survey_month: Annotated[int, typer.Option(help=_h(C.SkillConfig, "survey_month"))
+                            ] = SK.survey_month,
+    winter: Annotated[str, typer.Option(help=_h(C.SkillConfig, "winter"))] = SK.winter,
+    lags: Annotated[str, typer.Option(help=_h(C.SkillConfig, "lags"))] = SK.lags,
+    outlook_lag: Annotated[int, typer.Option(help=_h(C.SkillConfig, "outlook_lag"))
+                           ] = SK.outlook_lag,
+    outlook_q_max: Annotated[float, typer.Option(help=_h(C.SkillConfig, "outlook_q_max"))
+                             ] = SK.outlook_q_max,
+    confidence: Annotated[float, typer.Option(help=_h(C.SkillConfig, "confidence"))
+                          ] = SK.confidence,
+    reference: Annotated[str, typer.Option(help=_h(C.SkillConfig, "reference"))
+                         ] = SK.reference,
     cuts: Annotated[Path | None, typer.Option(
         help="cuts.json for the outlook's classes (default: terciles).")] = None,
-    leave_out: Annotated[int, typer.Option(
-        help="Years left out around each hindcast year (odd; 1 = leave-one-out).")] = 3,
+    leave_out: Annotated[int, typer.Option(help=_h(C.SkillConfig, "leave_out"))
+                         ] = SK.leave_out,
     ice_columns: Annotated[str | None, typer.Option(
         "--ice-columns", help="Map ice headers: ours=theirs,...")] = None,
     target_columns: Annotated[str | None, typer.Option(
         "--target-columns", help="Map target headers: ours=theirs,...")] = None,
-    ice_quantity: Annotated[str, typer.Option(
-        help="With an ice_fields.csv from coldindex ice: the quantity (area_km2, extent_km2, "
-             "volume_km3, mass_gt).")] = "mass_gt",
-    ice_region: Annotated[str, typer.Option(
-        help="With an ice_fields.csv: the region (empty: the only one).")] = "",
+    ice_quantity: Annotated[str, typer.Option(help=_h(C.IceFieldsOptions, "quantity"))
+                            ] = IF.quantity,
+    ice_region: Annotated[str, typer.Option(help=_h(C.IceFieldsOptions, "region"))
+                          ] = IF.region,
 ) -> None:
     """Lagged skill of winter ice for the target, the persistence baseline, hindcast, outlook."""
-    from coldindex import classify as cl
-    from coldindex import skill as sk
-    from coldindex.config import ConfigError, check_lags, check_months
-    from coldindex.errors import InputError
-    from coldindex.io.icefields import read_ice_series
-    from coldindex.io.readers import read_series
-    from coldindex.io.writers import plan_outputs, write_csv, write_figure, write_json
-    from coldindex.report.figures import hindcast_figure, skill_figure
+    opts = C.from_flags(C.SkillConfig, column=value, months=months, survey_month=survey_month,
+                        winter=winter, lags=lags, outlook_lag=outlook_lag,
+                        outlook_q_max=outlook_q_max, confidence=confidence,
+                        reference=reference, leave_out=leave_out)
+    ice_opts = C.from_flags(C.IceFieldsOptions, quantity=ice_quantity, region=ice_region)
+    from coldindex.io.files import check_input_files
+    from coldindex.pipeline import read_cuts_for, run_skill
+    from coldindex.report.text import skill_lines
 
-    if not 0 < confidence < 1:
-        raise ColdindexError(f"--confidence needs to be in (0, 1), got: {confidence}.")
-    check_months(sk.parse_months(months), "--months")
-    check_lags(sk.parse_lags(lags), "--lags")
-    outputs = plan_outputs(out, "skill", ("skill.csv", "hindcast.csv", "outlook.json",
-                                          "skill.png", "hindcast.png"), (ice, target, cuts))
-    if cuts is not None:
-        _cuts_for(cuts, value)  # a bad cuts file is refused before any work
-    try:
-        ice_raw = read_ice_series(ice, parse_column_map(ice_columns, "--ice-columns"),
-                                  ice_quantity, ice_region)
-    except ConfigError as exc:
-        raise ConfigError(str(exc).replace("ice_fields.", "--ice-")) from None
-    ice_df = sk.ice_frame(ice_raw, str(ice))
-    series = read_series(target, value, parse_column_map(target_columns, "--target-columns"),
-                         "--target-columns")
-    tgt = pd.Series(series["value"].to_numpy(), index=series["year"].to_numpy()).dropna()
-    ref = cl.parse_reference(reference)
-    doy: pd.Series | None = None
-    if survey_month is None:
-        try:
-            doy = read_series(target, "median_doy", parse_column_map(
-                target_columns, "--target-columns"), "--target-columns")["value"]
-        except InputError:
-            doy = None  # survey_month() says what to do
-    survey = sk.survey_month(survey_month, doy)
-    out_console.print(f"Winters labelled by the first survey after them (survey month {survey}"
-                      f"{'' if survey_month else ', from the median survey day'}).")
-    preds = sk.winter_predictors(ice_df, sk.parse_months(months), winter, survey=survey)
-    lag_list = sk.parse_lags(lags)
-    if cuts is not None:
-        c = _cuts_for(cuts, value)
-    else:
-        c = cl.cuts_by_rule(tgt.index, tgt.to_numpy(), value, "tercile", ref)
-    table, hc, ol = sk.skill_and_outlook(preds, tgt, lag_list, c, confidence, ref, leave_out,
-                                         outlook_lag, outlook_q_max)
-
-    best = table.sort_values(["q_value", "p_value"]).iloc[0]
-    sig = table[table["q_value"] < 0.1]
-    if len(sig):
-        out_console.print(
-            f"Skill: {len(sig)} of {len(table)} month x lag combinations are significant "
-            f"(q < 0.1); the strongest is {best['predictor']} at lag {best['lag']} "
-            f"(r = {best['r']:.2f}, {confidence:.0%} interval {best['r_lo']:.2f} to "
-            f"{best['r_hi']:.2f}, n = {best['n']}, effective n = {best['n_eff']:.1f}, "
-            f"q = {best['q_value']:.3f}).")
-        beats = best["p_beats_persistence"]
-        verdict = ("beats" if beats < 1 - confidence else "does not beat")
-        out_console.print(f"Against persistence (r = {best['r_persistence']:.2f}), it "
-                          f"{verdict} it (Williams' t, one-sided p = {beats:.3f}).")
-    else:
-        out_console.print(f"Skill: no month x lag combination is significant (smallest q = "
-                          f"{best['q_value']:.2f}); the ice carries no demonstrable skill.")
-    out_console.print(f"Hindcast (predictor and lag chosen in each fold from lags "
-                      f"{', '.join(map(str, hc.lags))}, most often lag {hc.lag}; "
-                      f"leave-{hc.leave_out}-out): anomaly correlation "
-                      f"{hc.anomaly_correlation:.2f}, RMSE {hc.rmse:.3g}, skill score "
-                      f"{hc.msss_climatology:.2f} against climatology and "
-                      f"{hc.msss_persistence:.2f} against persistence.")
-    out_console.print("Outlook: " + sk.outlook_sentence(ol, value))
-    with outputs as o:
-        write_csv(table, o.path("skill.csv"))
-        write_csv(hc.table[["year", "observed", "predicted", "persistence"]],
-                  o.path("hindcast.csv"))
-        write_json(ol, o.path("outlook.json"))
-        write_figure(skill_figure(table), o.path("skill.png"))
-        write_figure(hindcast_figure(hc.table, ol, value), o.path("hindcast.png"))
-    for p in outputs.written:
-        out_console.print(f"Wrote {p}")
+    check_input_files({"--ice": ice, "--target": target})
+    given = read_cuts_for(cuts, value) if cuts is not None else None
+    run = run_skill(ice, target, value, opts, ice_opts, given,
+                    parse_column_map(ice_columns, "--ice-columns"),
+                    parse_column_map(target_columns, "--target-columns"))
+    for line in skill_lines(run.result, value, opts, flag=True):
+        out_console.print(line)
+    _wrote(_write_stage(out, "skill", run, (ice, target, cuts)))
 
 
 @app.command()
-@_guard
+@_guard()
 def project(
     trajectories: Annotated[list[Path], typer.Argument(
         help="Trajectory CSV files (model, scenario, year, value[, member]) or gridded "
@@ -673,19 +621,15 @@ def project(
     cuts: Annotated[Path | None, typer.Option(
         help="cuts.json of the observed column (default: terciles of the observed record).")
     ] = None,
-    adjust: Annotated[str, typer.Option(help="none, delta, qmap or qdm.")] = "qdm",
-    calibration: Annotated[str | None, typer.Option(
-        help="Calibration period A-B (default: the overlap of model and observed years; at "
-             "least 20 shared years).")
-    ] = None,
+    adjust: Annotated[str, typer.Option(help=_h(C.ProjectConfig, "adjust"))] = PJ.adjust,
+    calibration: Annotated[str, typer.Option(help=_h(C.ProjectConfig, "calibration"))
+                           ] = PJ.calibration,
     short_calibration: Annotated[bool, typer.Option(
-        "--short-calibration", help="Accept fewer than 20 calibration years (needs "
-        "--calibration; recorded in emergence.csv).")] = False,
-    window: Annotated[int, typer.Option(help="Window (years) for the stop year.")] = 10,
-    p_stop: Annotated[float, typer.Option(
-        help="Cold years have stopped when P(at least one in the window) < this.")] = 0.1,
-    units: Annotated[str | None, typer.Option(
-        help="Unit of the trajectory values (checked against the observed column).")] = None,
+        "--short-calibration", help=_h(C.ProjectConfig, "short_calibration"))
+    ] = PJ.short_calibration,
+    window: Annotated[int, typer.Option(help=_h(C.ProjectConfig, "window"))] = PJ.window,
+    p_stop: Annotated[float, typer.Option(help=_h(C.ProjectConfig, "p_stop"))] = PJ.p_stop,
+    units: Annotated[str, typer.Option(help=_h(C.ProjectConfig, "units"))] = PJ.units,
     domain: DomainOpt = None,
     fields: Annotated[Path | None, typer.Option(
         help="Observed fields.nc (gridded path: per-cell adjustment, then areas).")] = None,
@@ -700,79 +644,51 @@ def project(
         "--trajectory-columns", help="Map trajectory headers: ours=theirs,...")] = None,
 ) -> None:
     """When do cold years stop? Bias-adjusted model trajectories under fixed cut values."""
-    from coldindex import classify as cl
-    from coldindex import project as pj
-    from coldindex.io.readers import (
-        check_netcdf,
-        check_trajectories,
-        read_domain,
-        read_series,
-        read_trajectories,
-        refuse_repeated_files,
-    )
-    from coldindex.io.writers import plan_outputs, write_csv, write_figure
-    from coldindex.report.figures import projection_figure
+    opts = C.from_flags(C.ProjectConfig, column=value, adjust=adjust, calibration=calibration,
+                        short_calibration=short_calibration, window=window, p_stop=p_stop,
+                        units=units)
+    from coldindex.io.files import check_input_files
+    from coldindex.io.readers import check_netcdf, read_domain
+    from coldindex.pipeline import GriddedSource, read_cuts_for, run_project
 
-    refuse_repeated_files(trajectories, "TRAJECTORIES")
+    check_input_files({"--observed": observed, **{f"TRAJECTORIES[{k}]": p
+                                                  for k, p in enumerate(trajectories)}})
+    gridded = None
     if fields is not None:  # the gridded path: every file must open as NetCDF
         for p in (fields, *trajectories):
             check_netcdf(p, "--fields" if p == fields else "TRAJECTORIES")
-    outputs = plan_outputs(out, "project", ("projection.csv", "emergence.csv",
-                                            "projection.png"),
-                           (*trajectories, observed, cuts, domain, fields))
-    obs = read_series(observed, value, parse_column_map(observed_columns, "--observed-columns"),
-                      "--observed-columns")
-    if cuts is not None:
-        c = _cuts_for(cuts, value)
-    else:
-        c = cl.cuts_by_rule(obs["year"], obs["value"], value)
-    opts = pj.ProjectOptions(adjust=adjust, calibration=cl.parse_reference(calibration),
-                             window=window, p_stop=p_stop, short_calibration=short_calibration)
-    bound = None
+        gridded = GriddedSource(fields, var, season, scheduler)
+    given = read_cuts_for(cuts, value) if cuts is not None else None
+    area = None
     if value.startswith("below_"):
         dom_path = domain or (observed.parent / "domain.geojson")
         if not dom_path.is_file():
             raise ColdindexError(f"Areas are bounded by the domain area; give --domain (no "
                                  f"{dom_path} beside the observed series).")
-        bound = read_domain(dom_path).area_km2
-    if fields is not None:
-        from coldindex import gridded
-
-        traj = gridded.trajectories_from_netcdf(trajectories, fields, value, var, season,
-                                                adjust, opts.calibration, scheduler)
-        opts = pj.ProjectOptions(adjust="none", calibration=opts.calibration, window=window,
-                                 p_stop=p_stop, short_calibration=short_calibration,
-                                 adjusted_upstream=adjust)
+        area = read_domain(dom_path).area_km2
+    run = run_project(trajectories, observed, value, opts, given, area,
+                      parse_column_map(trajectory_columns, "--trajectory-columns"),
+                      parse_column_map(observed_columns, "--observed-columns"), gridded)
+    res: Any = run.result
+    if gridded is not None:
         out_console.print("Gridded path: temperatures adjusted per grid cell against "
                           f"{fields}, then {value} recomputed on the survey grid.")
-    else:
-        pj.check_units(value, units)
-        frames = [pj.trajectory_frame(read_trajectories(
-            p, parse_column_map(trajectory_columns, "--trajectory-columns")), str(p))
-            for p in trajectories]
-        traj = pd.concat(frames, ignore_index=True)
-    check_trajectories(traj, ", ".join(map(str, trajectories)))
-    res = pj.project(traj, obs["year"], obs["value"], c, opts, bound)
+    c = run.cuts
     out_console.print(f"Calibration {res.calibration[0]}-{res.calibration[1]} "
-                      f"({res.calibration_years} shared years), adjustment {adjust}; cut values "
-                      f"{c.low:.4g} / {c.high:.4g} ({c.rule}).")
+                      f"({res.calibration_years} shared years), adjustment {adjust}"
+                      + (f"; cut values {c.low:.4g} / {c.high:.4g} ({c.rule})." if c else "."))
     if res.short_calibration:
         out_console.print(f"Caution: the bias adjustment rests on {res.calibration_years} "
                           "calibration years, fewer than 20, accepted with "
                           "--short-calibration (recorded in emergence.csv).")
     for sentence in res.summaries:
         out_console.print(sentence)
-    with outputs as o:
-        write_csv(res.projection, o.path("projection.csv"))
-        write_csv(res.emergence, o.path("emergence.csv"))
-        write_figure(projection_figure(res.projection, res.emergence),
-                     o.path("projection.png"))
-    for p in outputs.written:
-        out_console.print(f"Wrote {p}")
+    run.figures.pop("stop_years", None)
+    _wrote(_write_stage(out, "project", run, (*trajectories, observed, cuts, domain, fields)))
 
 
 @app.command()
-@_guard
+@_guard()
 def ice(
     fields: Annotated[list[Path], typer.Argument(
         help="Gridded ice NetCDF files (CF sea_ice_area_fraction, optional "
@@ -780,27 +696,22 @@ def ice(
     regions: Annotated[Path, typer.Option(
         "--regions", help="GeoJSON of named regions (a name property per feature).")],
     out: OutOpt,
-    density_kg_m3: Annotated[float, typer.Option(
-        help="Sea-ice density for the mass (kg m-3).")] = 917.0,
+    density_kg_m3: Annotated[float, typer.Option(help=_h(C.IceFieldsOptions, "density_kg_m3"))
+                             ] = IF.density_kg_m3,
     extent_threshold: Annotated[float, typer.Option(
-        help="Concentration (fraction) from which a cell counts toward the extent.")] = 0.15,
-    thickness: Annotated[str, typer.Option(
-        help="auto (read sea_ice_thickness's cell_methods), floe (times concentration) or "
-             "cell (already a mean over the cell).")] = "auto",
+        help=_h(C.IceFieldsOptions, "extent_threshold"))] = IF.extent_threshold,
+    thickness: Annotated[str, typer.Option(help=_h(C.IceFieldsOptions, "thickness"))
+                         ] = IF.thickness,
 ) -> None:
     """Monthly ice area, extent, volume and mass per region from gridded ice fields.
 
     Writes ice_fields.csv (year, month, region, quantity, value) and ice_fields.json
     (the inputs, region areas and how thickness was read).
     """
-    from coldindex.config import ConfigError, IceFieldsOptions
+    opts = C.from_flags(C.IceFieldsOptions, density_kg_m3=density_kg_m3,
+                        extent_threshold=extent_threshold, thickness=thickness)
     from coldindex.sources import run_ice
 
-    try:
-        opts = IceFieldsOptions(density_kg_m3=density_kg_m3,
-                                extent_threshold=extent_threshold, thickness=thickness)
-    except ConfigError as exc:
-        raise ConfigError(str(exc).replace("ice_fields.", "--").replace("_", "-")) from None
     res = run_ice(fields, regions, out, opts)
     t = res.table
     for name, r in res.record["regions"].items():
@@ -812,27 +723,17 @@ def ice(
                       f"({int(span['year'].iloc[0])}-{int(span['month'].iloc[0]):02d} to "
                       f"{int(span['year'].iloc[-1])}-{int(span['month'].iloc[-1]):02d}); "
                       f"thickness: {res.record['thickness'] or 'none'}.")
-    for p in res.written:
-        out_console.print(f"Wrote {p}")
+    _wrote(res.written)
 
 
-def _run_update(cfg: Any, out: Path, previous: Path | None) -> None:
-    from coldindex.pipeline import UPDATE_STAGES, run_update
+def _run_update(cfg: Any, out: Path, previous: Path | None, workers: int,
+                scheduler: str | None, progress: bool | None) -> None:
+    from coldindex.release import UPDATE_STAGES, Execution, run_update
 
-    progress = Progress(TextColumn("[bold]Annual update"), BarColumn(), MofNCompleteColumn(),
-                        TextColumn("{task.description}"), TimeElapsedColumn(),
-                        console=err_console, transient=True)
-    with progress:
-        task = progress.add_task("", total=len(UPDATE_STAGES))
-        seen: list[str] = []
-
-        def on_stage(name: str) -> None:
-            if seen:
-                progress.update(task, advance=1)
-            seen.append(name)
-            progress.update(task, description=name)
-
-        run = run_update(cfg, out, previous, on_stage)
+    with _ProgressBar("Annual update", _show_progress(progress)) as bar:
+        bar.start(len(UPDATE_STAGES))
+        run = run_update(cfg, out, previous, bar.stage,
+                         Execution(workers=_workers(workers), scheduler=scheduler))
     for note in run.notes:
         out_console.print(f"Note: {note}.")
     for h in run.headlines:
@@ -841,28 +742,44 @@ def _run_update(cfg: Any, out: Path, previous: Path | None) -> None:
 
 
 @app.command()
-@_guard
+@_guard(key_naming)
 def update(
     config: Annotated[Path, typer.Argument(help="TOML configuration (see coldindex init).")],
     out: Annotated[Path, typer.Option(
         "--out", help="Folder holding the releases (outside the folders of the inputs).")],
     previous: Annotated[Path | None, typer.Option(
         help="Release to compare with (default: the one OUT/latest names).")] = None,
+    check_only: Annotated[bool, typer.Option(
+        "--check", help="Validate the config and inputs, say what would run, and stop (no "
+        "computation, nothing written).")] = False,
+    workers: WorkersOpt = 0,
+    scheduler: SchedulerOpt = None,
+    progress: ProgressOpt = None,
 ) -> None:
     """Run every stage into a new release: indices, classes, shifts, skill, projections, report."""
-    from coldindex.config import load_config
+    cfg = C.load_config(config)
+    if check_only:
+        from coldindex.release import plan
 
-    cfg = load_config(config)
-    _run_update(cfg, out, previous)
+        lines = plan(cfg, out, previous)
+        out_console.print(f"{config}: valid; the inputs exist. The update would run:")
+        for line in lines:
+            out_console.print(f"- {line}")
+        return
+    _run_update(cfg, out, previous, workers, scheduler, progress)
 
 
 @app.command()
-@_guard
+@_guard()
 def init(
     folder: Annotated[Path, typer.Argument(help="Folder for the new coldindex.toml.")],
+    casts: Annotated[str, typer.Option(
+        help="Path of your casts file, relative to FOLDER.")] = "casts.csv",
+    from_demo: Annotated[bool, typer.Option(
+        "--from-demo", help="Write the demo's inputs into FOLDER too, and a config that "
+        "uses all of them.")] = False,
 ) -> None:
-    """Write a commented configuration template to FOLDER/coldindex.toml."""
-    from coldindex.config import TEMPLATE
+    """Write a configuration template to FOLDER/coldindex.toml that runs as written."""
     from coldindex.errors import OutputError
     from coldindex.io.writers import prepare_out_dir, write_bytes
 
@@ -870,26 +787,33 @@ def init(
     target = folder / "coldindex.toml"
     if target.exists():
         raise OutputError(f"{target} already exists; remove it or choose another folder.")
-    write_bytes(TEMPLATE.encode("utf-8"), target)
-    out_console.print(f"Wrote {target}; set inputs.casts and run coldindex update {target}.")
+    if from_demo:
+        from coldindex.demo import write_scenario
+
+        write_scenario(folder)  # writes the demo inputs and their coldindex.toml
+        out_console.print(f"Wrote the invented demo inputs and {target}; run coldindex update "
+                          f"{target} --out RELEASES.")
+        return
+    write_bytes(C.template(casts).encode("utf-8"), target)
+    out_console.print(f"Wrote {target}; it reads {folder / casts}. Check it with: coldindex "
+                      f"update {target} --out RELEASES --check")
 
 
 @app.command()
-@_guard
+@_guard(key_naming)
 def demo(
     folder: Annotated[Path, typer.Argument(help="Folder for the demo.")] = Path(
         "coldindex-demo"),
-    sims: Annotated[int, typer.Option(help="Conditional simulations a year.")] = 200,
-    boot: Annotated[int, typer.Option(help="Bootstrap replicates of the shift test.")] = 999,
+    sims: Annotated[int, typer.Option(help=_h(C.IndexOptions, "sims"))] = IX.sims,
+    boot: Annotated[int, typer.Option(help=_h(C.ShiftsConfig, "boot"))] = SH.boot,
+    workers: WorkersOpt = 0,
+    progress: ProgressOpt = None,
 ) -> None:
     """Write the invented sample inputs to DIR/inputs and run the whole update into DIR/release.
 
     The release holds the indices, year classes, regime shifts, the skill of winter
     ice with next summer's outlook, the projections, covariates and report.html.
     """
-    import dataclasses
-
-    from coldindex.config import load_config
     from coldindex.demo import write_scenario
     from coldindex.io.writers import prepare_out_dir
 
@@ -897,10 +821,9 @@ def demo(
     inputs = folder / "inputs"
     write_scenario(inputs)
     out_console.print(f"Wrote the invented inputs to {inputs}")
-    cfg = load_config(inputs / "coldindex.toml")
-    cfg = dataclasses.replace(cfg, index=dataclasses.replace(cfg.index, sims=sims),
-                              shifts=dataclasses.replace(cfg.shifts, boot=boot))
-    _run_update(cfg, folder / "release", None)
+    cfg = C.load_config(inputs / "coldindex.toml").replace(index={"sims": sims},
+                                                            shifts={"boot": boot})
+    _run_update(cfg, folder / "release", None, workers, None, progress)
 
 
 def main() -> None:

@@ -53,7 +53,7 @@ import shapely
 import xarray as xr
 from shapely.geometry import Polygon
 
-from coldindex.config import TEMPLATE
+from coldindex.config import template
 from coldindex.domain import Domain, domain_from_polygon, wrap_lon
 from coldindex.io.writers import atomic_path, write_bytes, write_csv, write_json
 
@@ -294,18 +294,14 @@ def _strata_geojson() -> dict:
     return {"type": "FeatureCollection", "features": feats}
 
 
+_INPUTS = {"domain": "domain.geojson", "bathymetry": "bathymetry.nc",
+           "trajectories": ["trajectories.csv"], "regions": "strata.geojson"}
+_SETTINGS = {"skill": {"months": "5-10"}, "index": {"depth_zones": DEPTH_ZONES}}
+
+
 def _config_text() -> str:
-    """The sample configuration: the template with the austral winter months, strata, zones."""
-    text = TEMPLATE
-    for old, new in (
-        ('months = "11-4"  ', 'months = "5-10"  '),
-        ('# regions = "strata.geojson"  ', 'regions = "strata.geojson"    '),
-        ('depth_zones = ""         ', f'depth_zones = "{DEPTH_ZONES}"'),
-    ):
-        if text.count(old) != 1:  # pragma: no cover - guards the template's wording
-            raise RuntimeError(f"the config template no longer holds {old.strip()!r}")
-        text = text.replace(old, new)
-    return text
+    """The sample configuration: casts, monthly ice, the austral winter months, strata, zones."""
+    return template("casts.csv", {**_INPUTS, "ice": "ice.csv"}, _SETTINGS)
 
 
 PROFILE_STEP_DBAR = 5.0  # CTD bin size of the invented profiles
@@ -488,20 +484,9 @@ def make_ice_fields(sc: Scenario) -> xr.Dataset:
 
 
 def _raw_config_text() -> str:
-    """The sample configuration that starts from the raw sources."""
-    text = _config_text()
-    for old, new in (
-        ('casts = "casts.csv"                  # CSV or Parquet: year, lat, lon, bottom_c, ...\n',
-         'profiles = "profiles.nc"             # CTD profiles (CF contiguous ragged array)\n'),
-        ('ice = "ice.csv"                      # optional: monthly ice (year, month, ice) for '
-         'the skill stage\n',
-         'ice_fields = ["ice_fields.nc"]       # gridded ice: the mass over the domain feeds '
-         'the skill stage\n'),
-    ):
-        if text.count(old) != 1:  # pragma: no cover - guards the template's wording
-            raise RuntimeError(f"the config template no longer holds {old.strip()!r}")
-        text = text.replace(old, new)
-    return text
+    """The sample configuration that starts from the raw sources: profiles and ice fields."""
+    return template(None, {"profiles": "profiles.nc", **_INPUTS,
+                           "ice_fields": ["ice_fields.nc"]}, _SETTINGS)
 
 
 def write_scenario(out: Path, seed: int = SEED) -> list[Path]:

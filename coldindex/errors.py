@@ -3,13 +3,54 @@
 Every error raised for bad input carries one sentence that names the file,
 row or column at fault and says what to do. The CLI prints that sentence and
 exits with a non-zero code; it never shows a traceback for these.
+
+An error about an option names it once, as ``(table, key)``: the sentence says
+``skill.lags`` inside ``coldindex update`` (the config key) and ``--lags`` on a
+single command (the flag). The message holds ``{option}`` where the name goes;
+:func:`coldindex.config.option_name` is the one mapping between the two.
 """
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+Naming = Callable[[str, str], str]
+
+
+def key_naming(table: str, key: str) -> str:
+    """The config-file name of an option: ``table.key``."""
+    return f"{table}.{key}" if table else key
 
 
 class ColdindexError(Exception):
-    """Base class of every error the CLI turns into a one-line message."""
+    """Base class of every error the CLI turns into a one-line message.
+
+    Parameters
+    ----------
+    message
+        One sentence; ``{option}`` marks where the option's name goes.
+    option
+        ``(table, key)`` of the option the sentence is about, or None.
+    """
 
     exit_code = 2
+
+    def __init__(self, message: str, option: tuple[str, str] | None = None) -> None:
+        super().__init__(message)
+        self.message = message
+        self.option = option
+
+    def render(self, naming: Naming = key_naming) -> str:
+        """The sentence, with the option named by ``naming`` (config key by default)."""
+        if self.option is None or "{option}" not in self.message:
+            return self.message
+        return self.message.replace("{option}", naming(*self.option))
+
+    def __str__(self) -> str:
+        return self.render()
+
+    def __reduce__(self) -> tuple[type, tuple[str, tuple[str, str] | None]]:
+        return (type(self), (self.message, self.option))  # survives worker processes
 
 
 class InputError(ColdindexError):
@@ -27,7 +68,11 @@ class OutputError(ColdindexError):
 
 
 class TooFewDataError(ColdindexError):
-    """Valid input, but too little of it for the requested computation."""
+    """Valid input, but too little of it for the requested computation.
+
+    Inside the yearly update a stage that raises it is skipped with this sentence as
+    its reason; a single command refuses with it.
+    """
 
 
 class StageError(ColdindexError):

@@ -23,7 +23,7 @@ import json
 import os
 import shutil
 import tempfile
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
@@ -481,3 +481,42 @@ def plan_outputs(out: Path, command: str, names: Sequence[str],
                           "when missing).")
     refuse_overwriting_inputs(output_targets(out, names), inputs, option)
     return OutputSet(out, command, names)
+
+
+def write_outputs(folder: Path, files: Mapping[str, object],
+                  figures: Mapping[str, object] | None = None,
+                  figure_formats: Sequence[str] = ("png",), figure_dir: str = "") -> list[Path]:
+    """Write a stage's outputs into ``folder``: frames as CSV, mappings as JSON, bytes raw.
+
+    Parameters
+    ----------
+    folder
+        A staging folder (single command) or a partial release (update).
+    files
+        Outputs by file name (may hold a subfolder, e.g. ``cuts/x.json``).
+    figures
+        Figures by name, saved as ``<figure_dir>/<name>.<format>``.
+    figure_formats
+        Formats of each figure, e.g. ``("svg", "png")``.
+    figure_dir
+        Subfolder of the figures (empty: beside the files).
+
+    Returns
+    -------
+    list of Path
+        The files written.
+    """
+    written = []
+    for name, obj in files.items():
+        target = folder / name
+        if isinstance(obj, pd.DataFrame):
+            written.append(write_csv(obj, target))
+        elif isinstance(obj, bytes):
+            written.append(write_bytes(obj, target))
+        else:
+            written.append(write_json(obj, target))
+    for name, fig in (figures or {}).items():
+        for k, fmt in enumerate(figure_formats):
+            target = folder / figure_dir / f"{name}.{fmt}"
+            written.append(write_figure(fig, target, close=k == len(figure_formats) - 1))
+    return written
