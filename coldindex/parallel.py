@@ -22,6 +22,7 @@ worker by ``scatter(broadcast=True)``; each task carries only its year's casts.
 from __future__ import annotations
 
 import multiprocessing as mp
+import os
 import signal
 from collections.abc import Callable, Sequence
 from concurrent.futures import FIRST_EXCEPTION, Future, ProcessPoolExecutor, wait
@@ -47,6 +48,14 @@ PRELOAD = ["coldindex.indices"]
 """Modules the forkserver imports once, so the workers it forks start warm."""
 
 _SHARED: Any = None
+
+
+def default_workers() -> int:
+    """The cores this process may run on (its CPU affinity), at least 1."""
+    try:
+        return max(len(os.sched_getaffinity(0)), 1)
+    except AttributeError:  # no affinity on macOS and Windows
+        return max(os.cpu_count() or 1, 1)
 
 
 def start_method() -> str:
@@ -188,8 +197,10 @@ class YearPool:
                         on_done(futures[fut], res)
         except BrokenProcessPool:
             self.close(abort=True)
-            raise StageError("A worker process stopped unexpectedly (out of memory?); run "
-                             "again with fewer --workers.") from None
+            raise StageError("A worker process stopped unexpectedly: out of memory (run "
+                             "again with fewer --workers), or a script that calls coldindex "
+                             "with workers > 1 outside an `if __name__ == \"__main__\":` "
+                             "block (add one).") from None
         except BaseException:
             for fut in pending:
                 fut.cancel()
