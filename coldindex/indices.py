@@ -24,10 +24,11 @@ from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 from scipy.special import ndtr
 
+from coldindex import dense
 from coldindex.config import IndexOptions
 from coldindex.domain import Domain, Grid, sample_lonlat_grid, station_spacing_km
 from coldindex.errors import InputError, TooFewDataError
-from coldindex.fitting import Fit, draw_variograms, fit_variogram, with_posterior
+from coldindex.fitting import Fit, draw_variograms, with_posterior
 from coldindex.interpolate import (
     FAMILIES,
     Kriging,
@@ -192,10 +193,10 @@ def _family_score(xy: FloatArray, z: FloatArray, family: str, drift: FloatArray 
                   method: str) -> tuple[float, Fit | None]:
     """The fit and its score: ``-2 log L`` for likelihood fits, LOO mean squared error for wls."""
     try:
-        fit = fit_variogram(xy, z, family, drift, method=method)
+        fit = dense.fit_year(xy, z, family, drift, method=method)
         if method != "wls":
             return fit.neg2loglik, fit
-        err, _ = Kriging(xy, z, fit.variogram, drift).loo()
+        err, _ = dense.make_kriging(xy, z, fit.variogram, drift).loo()
     except (TooFewDataError, np.linalg.LinAlgError):
         return float("inf"), None
     return float(np.mean(err**2)), fit
@@ -626,8 +627,8 @@ def index_year(shared: YearShared, task: YearTask) -> YearResult:
         fam, _, per_year = choose_family([(xy, z, drift)], options.fit)
         if per_year[0] is not None:
             fit0 = per_year[0]
-    fit = fit0 or fit_variogram(xy, z, fam, drift, method=options.fit)
-    kr = Kriging(xy, z, fit.variogram, drift)
+    fit = fit0 or dense.fit_year(xy, z, fam, drift, method=options.fit)
+    kr = dense.make_kriging(xy, z, fit.variogram, drift)
     flagged = spatial_outliers(kr, options.outlier_z)
     outliers = None
     if flagged.any():
@@ -638,8 +639,8 @@ def index_year(shared: YearShared, task: YearTask) -> YearResult:
         xy, z, drift = _arrays(g, shared.drift_cols)
         row["n_casts"] = len(g)
         row["median_doy"] = float(g["doy"].median())
-        fit = fit_variogram(xy, z, fit.variogram.family, drift, method=options.fit)
-        kr = Kriging(xy, z, fit.variogram, drift)
+        fit = dense.fit_year(xy, z, fit.variogram.family, drift, method=options.fit)
+        kr = dense.make_kriging(xy, z, fit.variogram, drift)
     vg: Variogram = fit.variogram
     est, var, _ = kr.predict(cell_xy, drift_cells)
     assert var is not None
@@ -665,7 +666,7 @@ def index_year(shared: YearShared, task: YearTask) -> YearResult:
     sims: SimSummaries | None = None
     if shared.with_sims:
         rng = np.random.default_rng(np.random.SeedSequence([options.seed, yr]))
-        sims = simulate_summaries(kr, fit, xy, z, drift, shared.grid, cell_xy, cell_area,
+        sims = dense.simulate(kr, fit, xy, z, drift, shared.grid, cell_xy, cell_area,
                                   drift_cells, options, rng,
                                   regions.weights if regions is not None else None)
         row["simulation"] = sims.method
@@ -701,8 +702,8 @@ def _surface_indices(row: dict[str, object], g: pd.DataFrame, xy: FloatArray, fa
     s = g["surface_c"].astype(float).to_numpy()
     ok = np.isfinite(s)
     try:
-        fit = fit_variogram(xy[ok], s[ok], family, None, method=options.fit)
-        est, var, _ = Kriging(xy[ok], s[ok], fit.variogram).predict(cell_xy)
+        fit = dense.fit_year(xy[ok], s[ok], family, None, method=options.fit)
+        est, var, _ = dense.make_kriging(xy[ok], s[ok], fit.variogram).predict(cell_xy)
     except (TooFewDataError, np.linalg.LinAlgError):
         return ["no surface indices: the surface variogram could not be fitted"]
     assert var is not None
@@ -781,7 +782,7 @@ def find_spatial_outliers(casts: pd.DataFrame, z_max: float, min_casts: int,
         idx = g.index.to_numpy()
         xy, z = xy_all[casts.index.get_indexer(idx)], g["bottom_c"].to_numpy(float)
         try:
-            kr = Kriging(xy, z, fit_variogram(xy, z, family, None, method=method).variogram)
+            kr = dense.make_kriging(xy, z, dense.fit_year(xy, z, family, method=method).variogram)
             zs = standardized_loo(kr)
         except (TooFewDataError, np.linalg.LinAlgError):
             continue
@@ -791,7 +792,7 @@ def find_spatial_outliers(casts: pd.DataFrame, z_max: float, min_casts: int,
     return pd.concat(found, ignore_index=True) if found else pd.DataFrame(columns=cols)
 
 
-def standardized_loo(kr: Kriging) -> FloatArray:
+def standardized_loo(kr: dense.AnyKriging) -> FloatArray:
     """Leave-one-out standardized residuals of the casts. [1]
 
     The error of predicting each cast from all the others, divided by the
@@ -807,7 +808,7 @@ def standardized_loo(kr: Kriging) -> FloatArray:
     return np.asarray(err / np.sqrt(var), float)
 
 
-def spatial_outliers(kr: Kriging, z_max: float) -> NDArray[np.bool_]:
+def spatial_outliers(kr: dense.AnyKriging, z_max: float) -> NDArray[np.bool_]:
     """Casts whose leave-one-out standardized residual exceeds ``z_max`` in size.
 
     Parameters
