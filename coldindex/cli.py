@@ -370,7 +370,7 @@ def index(
 
     with _ProgressBar("Mapping survey years", _show_progress(progress)) as bar:
         run = run_index(source, out, opts, mapping, domain, bathymetry,
-                        progress=bar.advance, on_start=bar.start, regions_path=regions,
+                        progress=bar.event, regions_path=regions,
                         profiles=popts, read=read, workers=_workers(workers),
                         scheduler=scheduler)
     res = run.result
@@ -396,28 +396,27 @@ def index(
 
 
 class _ProgressBar:
-    """Years done of total, elapsed and remaining time, on stderr (or nothing)."""
+    """The stage, items done of total, elapsed and remaining time, on stderr (or nothing)."""
 
     def __init__(self, title: str, show: bool) -> None:
         self.show, self.title = show, title
         self.bar: Any = None
         self.task: Any = None
+        self.clock: Any = None
+        self.prefix = ""
 
     def __enter__(self) -> _ProgressBar:
         if self.show:
-            from rich.progress import (
-                BarColumn,
-                MofNCompleteColumn,
-                Progress,
-                TextColumn,
-                TimeElapsedColumn,
-                TimeRemainingColumn,
-            )
+            import time
 
+            from rich.progress import BarColumn, Progress, TextColumn
+
+            from coldindex.progress import ProgressClock
+
+            self.clock = ProgressClock(time.monotonic)
             self.bar = Progress(TextColumn(f"[bold]{self.title}"), BarColumn(),
-                                MofNCompleteColumn(), TextColumn("{task.description}"),
-                                TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
-                                console=err_console, transient=True)
+                                TextColumn("{task.description}"), console=err_console,
+                                transient=True)
             self.bar.__enter__()
             self.task = self.bar.add_task("", total=None)
         return self
@@ -426,17 +425,22 @@ class _ProgressBar:
         if self.bar is not None:
             self.bar.__exit__(*exc)
 
-    def start(self, total: int) -> None:
-        if self.bar is not None:
-            self.bar.update(self.task, total=total)
-
-    def advance(self, what: object) -> None:
-        if self.bar is not None:
-            self.bar.update(self.task, advance=1, description=str(what))
+    def event(self, ev: Any) -> None:
+        """Show one :class:`coldindex.progress.ProgressEvent` with its times."""
+        if self.bar is None:
+            return
+        st = self.clock.update(ev)
+        left = f", about {st.remaining_s:.0f} s left" if st.remaining_s is not None else ""
+        year = f" ({ev.year})" if ev.year is not None else ""
+        self.bar.update(self.task, total=ev.total, completed=ev.done,
+                        description=f"{self.prefix}{st.label} {ev.done}/{ev.total}{year}, "
+                                    f"{st.elapsed_s:.0f} s elapsed{left}")
 
     def stage(self, name: str) -> None:
+        """Show the update's stage by name (the per-year events follow inside it)."""
         if self.bar is not None:
-            self.bar.update(self.task, advance=1, description=name)
+            self.prefix = f"{name}: "
+            self.bar.update(self.task, description=name)
 
 
 SeriesArg = Annotated[Path, typer.Argument(help="Yearly series (CSV or Parquet), e.g. "
@@ -728,12 +732,12 @@ def ice(
 
 def _run_update(cfg: Any, out: Path, previous: Path | None, workers: int,
                 scheduler: str | None, progress: bool | None) -> None:
-    from coldindex.release import UPDATE_STAGES, Execution, run_update
+    from coldindex.release import Execution, run_update
 
     with _ProgressBar("Annual update", _show_progress(progress)) as bar:
-        bar.start(len(UPDATE_STAGES))
         run = run_update(cfg, out, previous, bar.stage,
-                         Execution(workers=_workers(workers), scheduler=scheduler))
+                         Execution(workers=_workers(workers), scheduler=scheduler,
+                                   on_progress=bar.event))
     for note in run.notes:
         out_console.print(f"Note: {note}.")
     for h in run.headlines:

@@ -850,7 +850,7 @@ def config_from_mapping(raw: Mapping[str, Any], base: Path, source: Path | None 
         paths[key] = resolved if many else resolved[0]
     tables = {key: build(cls, raw.get(key, {})) for key, cls in _STAGE_TABLES.items()}
     maps = {key: _string_map(raw.get(key, {}), key) for key in _MAP_TABLES}
-    cfg = Config(inputs=Inputs(**paths), source=source, **maps, **tables)
+    cfg = Config(inputs=Inputs(**paths), source=source, **maps, **tables)  # type: ignore[arg-type]
     check_columns(cfg)
     return cfg
 
@@ -955,7 +955,8 @@ def template(casts: str | None = "casts.csv", inputs: Mapping[str, Any] | None =
         lines.append(f"# {field.description}")
         if key in given:
             value = given[key]
-            lines.append(f"{key} = {_toml_value(tuple(value) if isinstance(value, list) else value)}")
+            value = tuple(value) if isinstance(value, list) else value
+            lines.append(f"{key} = {_toml_value(value)}")
         else:
             example = _toml_value(_EXAMPLES.get(key, f"{key}.geojson"))
             lines.append(f"# {key} = {example}")

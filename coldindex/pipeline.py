@@ -9,12 +9,9 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import os
 import platform
-import re
-import tempfile
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -22,7 +19,6 @@ import numpy as np
 import pandas as pd
 
 from coldindex._version import __version__
-from coldindex.classify import reference_values
 from coldindex.classify import Cuts
 from coldindex.config import (
     ClassifyConfig,
@@ -37,21 +33,14 @@ from coldindex.config import (
 )
 from coldindex.domain import Domain, Grid, derive_domain, make_grid, sample_lonlat_grid
 from coldindex.errors import (
-    BusyError,
-    ColdindexError,
-    ConfigError,
     InputError,
-    OutputError,
-    StageError,
     TooFewDataError,
-    os_error_sentence,
 )
 from coldindex.indices import IndexResult, compute_indices
 from coldindex.interpolate import FAMILIES
 from coldindex.io import readers, writers
-from coldindex.project import ProjectionResult
+from coldindex.progress import ProgressEvent
 from coldindex.qc import QCResult, run_qc, year_hashes
-from coldindex.regimes import ShiftResult
 from coldindex.regions import RegionWeights
 
 FROZEN_NAME = "frozen.json"
@@ -300,9 +289,8 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
 def run_index(casts_path: Path, out: Path, options: IndexOptions,
               mapping: Mapping[str, str] | None = None, domain_path: Path | None = None,
               bathymetry_path: Path | None = None,
-              progress: Callable[[int], None] | None = None,
+              progress: Callable[[ProgressEvent], None] | None = None,
               regions_path: Path | None = None,
-              on_start: Callable[[int], None] | None = None,
               profiles: ProfileOptions | None = None, read: ReadOptions | None = None,
               workers: int = 1, scheduler: str | None = None) -> IndexRun:
     """Compute the indices and write ``indices.csv``, ``fields.nc`` and companions.
@@ -323,9 +311,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
     domain_path, bathymetry_path
         Optional domain GeoJSON and bathymetry NetCDF.
     progress
-        Called with each year when done.
-    on_start
-        Called once with the number of years before the first one starts.
+        Called with each :class:`coldindex.progress.ProgressEvent`.
     profiles
         Given: ``casts_path`` is a profiles file; ``casts.csv`` (the casts made from
         it) is written too.
@@ -352,8 +338,6 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
     notes = []
     if frozen_family:
         notes.append(f"variogram family {frozen_family} reused from {out / FROZEN_NAME}")
-    if on_start is not None:
-        on_start(int(check.qc.casts["year"].nunique()))
     frozen_spacing = frozen.get("reference_spacing_km")
     if frozen and frozen_spacing is None:
         notes.append(f"{out / FROZEN_NAME} has no reference station spacing (made by an older "
@@ -365,7 +349,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
                              frozen_family=frozen_family, progress=progress,
                              frozen_spacing_km=frozen_spacing, regions=regions,
                              frozen_reference_day=frozen.get("reference_day"),
-                             **_execution_kwargs(_Exec(workers, scheduler)))
+                             workers=workers, scheduler=scheduler)
 
     inputs = {"profiles" if profiles else "casts": {"path": str(casts_path),
                                                     "sha256": writers.sha256_file(casts_path)}}
@@ -405,8 +389,8 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
 class StageRun:
     """A stage's outputs by file name, its figures by name, and the result itself."""
 
-    files: dict[str, object]
-    figures: dict[str, object] = field(default_factory=dict)
+    files: dict[str, Any]
+    figures: dict[str, Any] = field(default_factory=dict)
     result: Any = None
     cuts: Cuts | None = None  # the cut values the stage used
 
@@ -466,15 +450,17 @@ def run_skill(ice_path: Path, target_path: Path, column: str, options: SkillConf
               ice_options: IceFieldsOptions | None = None, cuts: Cuts | None = None,
               ice_mapping: Mapping[str, str] | None = None,
               target_mapping: Mapping[str, str] | None = None) -> StageRun:
-    """Lagged skill of winter ice, hindcast and outlook: ``skill.csv``, ``hindcast.csv``,
-    ``outlook.json`` and two figures."""
+    """Lagged skill of winter ice, hindcast and outlook, with two figures.
+
+    Files: ``skill.csv``, ``hindcast.csv``, ``outlook.json``.
+    """
     from coldindex import classify as cl
     from coldindex import skill as sk
     from coldindex.io.icefields import read_ice_series
     from coldindex.report.figures import hindcast_figure, skill_figure
 
     io = ice_options or IceFieldsOptions()
-    ice = sk.ice_frame(read_ice_series(ice_path, ice_mapping, io.quantity, io.region),
+    ice = sk.ice_frame(read_ice_series(ice_path, dict(ice_mapping or {}), io.quantity, io.region),
                        str(ice_path))
     series = readers.read_series(target_path, column, target_mapping)
     target = pd.Series(series["value"].to_numpy(), index=series["year"].to_numpy()).dropna()
@@ -507,8 +493,10 @@ def run_project(trajectory_paths: Sequence[Path], observed_path: Path, column: s
                 trajectory_mapping: Mapping[str, str] | None = None,
                 observed_mapping: Mapping[str, str] | None = None,
                 gridded: GriddedSource | None = None) -> StageRun:
-    """Bias-adjusted trajectories, cold-year probability and stop years:
-    ``projection.csv``, ``emergence.csv`` and two figures."""
+    """Bias-adjusted trajectories, cold-year probability and stop years, with two figures.
+
+    Files: ``projection.csv``, ``emergence.csv``.
+    """
     from coldindex import classify as cl
     from coldindex import project as pj
     from coldindex.report.figures import projection_figure, stop_year_figure
@@ -599,27 +587,11 @@ def index_release_stage(cfg: Config, rel: Path, prev: Path | None,
     res = compute_indices(check.qc.casts, check.domain, grid, opts, bathy, frozen_family=family,
                           frozen_spacing_km=frozen_spacing, regions=regions,
                           frozen_reference_day=frozen_prev.get("reference_day"),
-                          **_execution_kwargs(execution))
+                          progress=getattr(execution, "on_progress", None),
+                          workers=getattr(execution, "workers", 1),
+                          scheduler=getattr(execution, "scheduler", None))
     written, frozen = _write_index_outputs(rel, check, res, grid, opts)
     return IndexStage(check, res, grid, check.domain, frozen, written, notes)
-
-
-@dataclass(frozen=True)
-class _Exec:
-    workers: int = 1
-    scheduler: str | None = None
-
-
-def _execution_kwargs(execution: object) -> dict:
-    """Workers, scheduler and progress for compute_indices, when it takes them."""
-    import inspect
-
-    if execution is None:
-        return {}
-    params = inspect.signature(compute_indices).parameters
-    wanted = {"workers": getattr(execution, "workers", 1),
-              "scheduler": getattr(execution, "scheduler", None)}
-    return {k: v for k, v in wanted.items() if k in params}
 
 
 def _read_kwargs(read: ReadOptions | None) -> dict:

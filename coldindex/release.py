@@ -16,6 +16,7 @@ import platform
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -179,8 +180,11 @@ def _versions() -> dict[str, str]:
 
 
 def config_record(cfg: Config) -> dict:
-    """The configuration as recorded in ``provenance.json``: input paths relative to the
-    config's folder, so a release does not change with the spelling of a path."""
+    """The configuration as recorded in ``provenance.json``.
+
+    Input paths are relative to the config's folder, so a release does not change with
+    the spelling of a path.
+    """
     base = cfg.source.parent if cfg.source else Path(".")
     d = cfg.model_dump(mode="json", exclude={"source", "inputs"})
     d["inputs"] = {k: ([io_files.relative_to(x, base) for x in v] if isinstance(v, tuple)
@@ -320,8 +324,8 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
             else:
                 notes.append(f"cut values of {col} reused from {prev_cuts}")
         run = pl.run_classify(table, col, cfg.classify, old)
-        cuts[col] = run.result  # type: ignore[assignment]
-        class_frames.append(run.files.pop("classes.csv").assign(column=col))  # type: ignore[union-attr]
+        cuts[col] = run.result
+        class_frames.append(run.files.pop("classes.csv").assign(column=col))
         write(run, **{"cuts.json": f"cuts/{col}.json"})
     classes = pd.concat(class_frames, ignore_index=True)
     classes = classes[["column", *[x for x in classes.columns if x != "column"]]]
@@ -377,16 +381,16 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     if proj is not None:
         p = proj.result
         prov["projection_calibration"] = {
-            "start": p.calibration[0], "end": p.calibration[1],  # type: ignore[attr-defined]
-            "years": p.calibration_years,  # type: ignore[attr-defined]
-            "short_calibration": p.short_calibration}  # type: ignore[attr-defined]
+            "start": p.calibration[0], "end": p.calibration[1],
+            "years": p.calibration_years,
+            "short_calibration": p.short_calibration}
     prov = json.loads(json.dumps(prov))  # tuples read back as lists, like the previous one
     prev_prov = releases.read_previous(prev, "provenance.json")
-    revisions = revisions_table(indices, releases.read_previous(prev, "indices.csv"),  # type: ignore[arg-type]
-                                prov, prev_prov, cfg.report.tolerance)  # type: ignore[arg-type]
+    revisions = revisions_table(indices, releases.read_previous(prev, "indices.csv"),
+                                prov, prev_prov, cfg.report.tolerance)
     prev_shifts = releases.read_previous(prev, "shifts.csv")
     if prev_shifts is not None and shifts is not None:
-        withdrawn = withdrawn_shift_revisions(prev_shifts, shifts.files["shifts.csv"],  # type: ignore[arg-type]
+        withdrawn = withdrawn_shift_revisions(prev_shifts, shifts.files["shifts.csv"],
                                               sc.column)
         if len(withdrawn):
             revisions = pd.concat([revisions.astype(withdrawn.dtypes.to_dict()), withdrawn],
@@ -413,7 +417,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     return _Built(lines, notes, skipped)
 
 
-def _provenance(cfg: Config, prev: Path | None, index: object) -> dict:
+def _provenance(cfg: Config, prev: Path | None, index: Any) -> dict:
     """Everything a later release needs to explain its revisions."""
     from coldindex.qc import year_hashes
 
@@ -429,7 +433,7 @@ def _provenance(cfg: Config, prev: Path | None, index: object) -> dict:
     return {"tool": "coldindex", "version": __version__, "release_format": RELEASE_FORMAT,
             "config": config_record(cfg), "parameters": cfg.index.model_dump(mode="json"),
             "inputs_sha256": inputs,
-            "casts_sha256_by_year": year_hashes(index.check.qc.table),  # type: ignore[attr-defined]
-            "frozen": index.frozen,  # type: ignore[attr-defined]
+            "casts_sha256_by_year": year_hashes(index.check.qc.table),
+            "frozen": index.frozen,
             "previous_release": prev.name if prev is not None else None,
             "versions": _versions()}

@@ -14,6 +14,7 @@ import tempfile
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
+from typing import Any
 
 from coldindex.errors import BusyError, InputError, OutputError, os_error_sentence
 from coldindex.io import writers
@@ -36,6 +37,7 @@ def _release_dirs(out: Path) -> dict[int, Path]:
 
 
 def release_number(out: Path) -> int:
+    """The number the next release of ``out`` takes."""
     return max(_release_dirs(out), default=0) + 1
 
 
@@ -198,7 +200,7 @@ def discard(tmp: Path) -> None:
     shutil.rmtree(tmp, ignore_errors=True)
 
 
-def read_previous(rel: Path | None, name: str) -> object:
+def read_previous(rel: Path | None, name: str) -> Any:
     """A file of the previous release: JSON as a mapping, CSV as a frame, None when absent."""
     import pandas as pd
 

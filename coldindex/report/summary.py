@@ -56,7 +56,8 @@ def headlines(indices: pd.DataFrame, classes: pd.DataFrame, cuts: Mapping[str, A
         out.append(text + ".")
     from coldindex.regimes import surviving
 
-    sig = surviving(shifts.files["shifts.csv"], sc.p_max) if shifts is not None else []
+    sig = (surviving(shifts.files["shifts.csv"], sc.p_max) if shifts is not None
+           else pd.DataFrame())
     if shifts is None:
         out.append(f"Regime shifts not tested: {skipped.get('shifts', 'stage skipped')}")
     elif len(sig):
