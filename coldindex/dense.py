@@ -462,8 +462,7 @@ class _Solver:
         kr = self.kriging
         if isinstance(kr, LocalKriging):
             return kr.beta_of(X)
-        KiX = sla.cho_solve((kr.L, True), X, check_finite=False)
-        return np.linalg.solve(kr.G, kr.KiF.T @ KiX)
+        return np.asarray(np.linalg.solve(kr.G, kr.KiF.T @ X), float)  # G^-1 F^T K^-1 X
 
     def blocks(self, cells: FloatArray) -> Iterator[tuple[IntArray, IntArray,
                                                           FloatArray | None]]:
