@@ -210,6 +210,14 @@ class _Table(BaseModel):
     model_config = ConfigDict(frozen=True, extra="forbid", strict=True, allow_inf_nan=False)
     table: ClassVar[str] = ""
 
+    def __init__(self, **data: Any) -> None:
+        try:
+            super().__init__(**data)
+        except ValidationError as exc:  # built in code: name the config key
+            err = _sentence(exc, type(self), self.table, False)
+            err.validation = exc  # type: ignore[attr-defined]  # build() may rename it
+            raise err from None
+
     @model_validator(mode="before")
     @classmethod
     def _lists_to_tuples(cls, data: Any) -> Any:
@@ -776,6 +784,11 @@ def build(cls: type[Any], values: Mapping[str, Any], *, flag: bool = False,
                           f"{values!r}.")
     try:
         return cls.model_validate(dict(values))
+    except ConfigError as err:  # from the model's __init__: named as a config key
+        exc = getattr(err, "validation", None)
+        if exc is None:
+            raise
+        raise _sentence(exc, cls, name, flag) from None
     except ValidationError as exc:
         raise _sentence(exc, cls, name, flag) from None
 
