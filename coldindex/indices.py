@@ -897,7 +897,8 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
                        drift: FloatArray | None, grid: Grid, cell_xy: FloatArray,
                        cell_area: FloatArray, drift_cells: FloatArray | None,
                        options: IndexOptions, rng: np.random.Generator,
-                       region_w: FloatArray | None = None) -> SimSummaries:
+                       region_w: FloatArray | None = None,
+                       dist_budget: int = 2**22) -> SimSummaries:
     """Per-realization domain and region means and areas, over variogram parameter draws.
 
     ``options.param_draws`` variograms are drawn from the fit's posterior
@@ -913,6 +914,9 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
     ----------
     region_w
         Area of each active cell inside each region, (r, m) [km²]; None for none.
+    dist_budget
+        Most cells x casts distances kept for all draws (default 2**22, 32 MB); larger
+        grids form them block by block in each draw.
 
     Returns
     -------
@@ -928,7 +932,9 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
         draws = [fit.variogram]
     counts = np.full(len(draws), n // len(draws))
     counts[: n % len(draws)] += 1
-    dist = cdist(cell_xy, xy)
+    # The cells x casts distances serve every draw; above the budget each draw forms them
+    # block by block instead (same numbers, less memory).
+    dist = cdist(cell_xy, xy) if len(cell_xy) * len(xy) <= dist_budget else None
     rw = np.zeros((0, len(cell_area))) if region_w is None else np.asarray(region_w, float)
     means, areas, methods, coarse = [], [], set(), set()
     rmeans, rareas = [], []
@@ -938,14 +944,14 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
         kd = kr if vg == kr.vg else Kriging(xy, z, vg, drift)
         real = conditional_realizations(kd, grid.x, grid.y, grid.mask, cell_area, int(c), rng,
                                         drift_cells, cell_dist=dist)
-        mu, ar = real.summaries(options.thresholds)
-        means.append(mu)
-        areas.append(ar)
-        rm, ra = weighted_summaries(real.values,
-                                    node_weights(rw, real.node_of_cell, len(real.node_area)),
-                                    options.thresholds)
-        rmeans.append(rm)
-        rareas.append(ra)
+        # The domain and the regions in one pass over the realizations (domain first).
+        w = np.vstack([real.node_area[None, :],
+                       node_weights(rw, real.node_of_cell, len(real.node_area))])
+        mu, ar = weighted_summaries(real.values, w, options.thresholds)
+        means.append(mu[:, 0])
+        areas.append(ar[:, 0, :])
+        rmeans.append(mu[:, 1:])
+        rareas.append(ar[:, 1:, :])
         methods.add(real.method)
         if real.method == "exact":
             coarse.add(real.node_km)

@@ -571,7 +571,16 @@ def weighted_summaries(values: FloatArray, weights: FloatArray, thresholds: Sequ
     tot = w.sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         means = np.where(tot > 0, (values @ w.T) / np.where(tot > 0, tot, 1.0), np.nan)
-    areas = np.stack([(values < t).astype(float) @ w.T for t in thresholds], axis=2)
+    n, k = values.shape
+    areas = np.empty((n, len(w), len(thresholds)))
+    rows = max(1, _BLOCK_ELEMENTS // max(k, 1))  # realizations per block: stays in cache
+    below = np.empty((min(rows, n), k))
+    for start in range(0, n, rows):
+        v = values[start:start + rows]
+        b = below[: len(v)]
+        for j, t in enumerate(thresholds):
+            np.less(v, t, out=b)  # 1.0 where below, 0.0 elsewhere
+            areas[start:start + rows, :, j] = b @ w.T
     return means, areas
 
 
@@ -641,6 +650,42 @@ def _cast_stencils(xy: FloatArray, gx: FloatArray, gy: FloatArray, vg: Variogram
     var = np.maximum(vg.sill - np.einsum("nk,nk->n", W, C0), 0.0)
     nodes = (iy0[:, None] + oy[None, :]) * nx + (ix0[:, None] + ox[None, :])
     return nodes, W, np.sqrt(var)
+
+
+#: Active cells per block of the conditioning pass (cells x casts covariances of a block
+#: stay within a few MB).
+_COND_CELLS = 1024
+
+
+def _condition(out: FloatArray, kriging: Kriging, X: FloatArray, f0: FloatArray,
+               mask: NDArray[np.bool_], gx: FloatArray, gy: FloatArray,
+               cell_dist: FloatArray | None) -> None:
+    """Turn unconditional values at the cells into conditional realizations, in place.
+
+    ``out[j] += estimate - krige(X[:, j])`` for every realization j, one block of
+    cells at a time: the block's covariances to the casts are formed once for the
+    estimate and all realizations (one matrix product), never the whole cells x
+    casts matrix unless ``cell_dist`` is given.
+    """
+    vg = kriging.vg
+    Q, R = kriging._q
+    A = Q @ X  # (n_casts, n)
+    RtX = R.T @ X  # (p, n)
+    m = out.shape[1]
+    cxy: FloatArray | None = None
+    if cell_dist is None or cell_dist.shape != (m, len(kriging.z)):
+        xx, yy = np.meshgrid(gx, gy)
+        cxy = np.column_stack([xx[mask], yy[mask]])
+    for start in range(0, m, _COND_CELLS):
+        sl = slice(start, min(start + _COND_CELLS, m))
+        d = cdist(cxy[sl], kriging.xy) if cxy is not None else cell_dist[sl]  # type: ignore[index]
+        C = covariance_blocked(vg.family, d, vg.len_scale, vg.sill,
+                               out=d if cxy is not None else None)
+        est = f0[sl] @ kriging.beta + C @ kriging.dual
+        corr = C @ A + f0[sl] @ RtX  # (cells, n)
+        blk = out[:, sl]
+        blk += est[None, :]
+        blk -= corr.T
 
 
 def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayLike,
@@ -729,25 +774,23 @@ def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayL
     emb = circulant_embedding((len(fgy), len(fgx)), fine, vg, pad_cap=pad_cap)
     out: FloatArray
     if emb.clipped_share <= clip_tolerance:
-        xx, yy = np.meshgrid(gx, gy)
-        if cell_dist is None:
-            cell_dist = cdist(np.column_stack([xx[mask], yy[mask]]), kriging.xy)
-        C = vg.covariance(cell_dist)
-        est = f0 @ kriging.beta + C @ kriging.dual
         stencil, sk_w, sk_sd = _cast_stencils(kriging.xy, fgx, fgy, vg)
+        noise_sd = np.sqrt(sk_sd**2 + vg.nugget)
         iy, ix = np.nonzero(mask)
         flat_cells = (iy * r + half) * len(fgx) + ix * r + half
+        # First every realization's unconditional field at the cells and at the casts (the
+        # random draws, in the same order as ever), then one pass over blocks of cells adds
+        # the kriging estimate and subtracts the kriged unconditional values.
         out = np.empty((n, m))
+        X = np.empty((n_casts, n))
         for start in range(0, n, batch):
             b = min(batch, n - start)
             S = unconditional_fields(emb, b, rng).reshape(b, -1)
             at_casts = np.einsum("bnk,nk->bn", S[:, stencil], sk_w)
-            at_casts += np.sqrt(sk_sd**2 + vg.nugget) * rng.standard_normal((b, n_casts))
-            X = at_casts.T  # (n_casts, b)
-            block = np.take(S, flat_cells, axis=1)
-            block += est[None, :]
-            block -= (C @ (Q @ X) + f0 @ (R.T @ X)).T
-            out[start:start + b] = block
+            at_casts += noise_sd * rng.standard_normal((b, n_casts))
+            X[:, start:start + b] = at_casts.T
+            np.take(S, flat_cells, axis=1, out=out[start:start + b])
+        _condition(out, kriging, X, f0, mask, gx, gy, cell_dist)
         return Realizations(values=out, node_of_cell=None, node_area=area, method="circulant",
                             node_km=fine, clipped_share=emb.clipped_share)
     # Exact fallback on the cells, or on blocks of cells.
