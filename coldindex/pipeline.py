@@ -407,7 +407,8 @@ def read_cuts_for(path: Path, column: str) -> Cuts:
 def _enough(n: int, need: int, what: str, stage: str) -> None:
     if n < need:
         raise TooFewDataError(f"{n} years of {what} with a value, fewer than the {need} the "
-                              f"{stage} needs; it runs once the record is long enough.")
+                              f"{stage} needs; give a longer record (the yearly update skips "
+                              "this stage until the record is long enough).")
 
 
 def run_classify(series_path: Path, column: str, options: ClassifyConfig,
