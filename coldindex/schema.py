@@ -47,11 +47,16 @@ class Column:
 
 @dataclass(frozen=True)
 class Table:
-    """A named file layout: its columns in order and a short description."""
+    """A named file layout: its columns in order and a short description.
+
+    ``internal`` names columns the computation's frame carries for its own use that the
+    file never shows (e.g. the day of year in the QC frame); writers drop them.
+    """
 
     name: str
     description: str
     columns: tuple[Column, ...]
+    internal: tuple[str, ...] = ()
 
     @property
     def names(self) -> list[str]:
@@ -69,6 +74,40 @@ class Table:
             if c.name == name:
                 return c
         raise KeyError(name)
+
+    def conform(self, frame: Any) -> Any:
+        """The frame's declared columns in declared order, ready to be written.
+
+        Declared columns the frame lacks are left out (optional columns); ``internal``
+        columns are dropped.
+
+        Parameters
+        ----------
+        frame
+            A pandas DataFrame.
+
+        Returns
+        -------
+        pandas.DataFrame
+            The frame's columns of this table, in the table's order.
+
+        Raises
+        ------
+        ValueError
+            The frame carries a column this table does not declare, or a column twice:
+            a programming error (declare the column here, with its unit and meaning).
+        """
+        cols = [str(c) for c in frame.columns]
+        dup = sorted({c for c in cols if cols.count(c) > 1})
+        if dup:
+            raise ValueError(f"{self.name}: the frame carries {', '.join(dup)} more than once.")
+        names = self.names
+        extra = [c for c in cols if c not in names and c not in self.internal]
+        if extra:
+            raise ValueError(f"{self.name}: the frame carries undeclared column(s) "
+                             f"{', '.join(extra)}; declare them in coldindex/schema.py (name, "
+                             "unit, meaning) or leave them out of the frame.")
+        return frame[[c for c in names if c in cols]]
 
 
 CASTS = Table(
@@ -220,6 +259,7 @@ QC = Table(
         Column("flag", "-", "`ok` or the reason the cast is excluded (see the flag list).", "str"),
         Column("detail", "-", "What exactly was wrong, with the offending value.", "str"),
     ),
+    internal=("date", "depth_m", "salinity", "surface_c", "doy"),
 )
 
 QC_FLAGS: dict[str, str] = {
@@ -443,8 +483,11 @@ FIELDS_VARIABLES = Table(
 
 CLASSES = Table(
     "classes.csv",
-    "Output of `coldindex classify`: one row a year.",
+    "Output of `coldindex classify`: one row a year (the update's classes.csv: one row a "
+    "year and classified column).",
     (
+        Column("column", "-", "The classified column (only in the update's classes.csv, "
+               "which holds every column of classify.columns).", "str"),
         Column("year", "-", "Year.", "int"),
         Column("value", "as input", "The classified value.", "float"),
         Column("class", "-", "`cold`, `average` or `warm` under the cut values (blank when "
@@ -646,8 +689,10 @@ COVARIATES = Table(
     "covariates.csv",
     "Output of `coldindex update`: the assessor's covariates, one row a year (every year "
     "from the first to the last, blank where a year has no value). For each chosen index "
-    "`<col>`: the value, `<col>_sd`, `<col>_lo90`, `<col>_hi90` (when simulated), `<col>_z` "
-    "and lagged copies. Example: to pair a year-class spawned in year Y with the bottom "
+    "`<col>` (each of covariates.columns, and with regions each region's copy "
+    "`<region>_<col>`): the value, `<col>_sd`, `<col>_lo90`, `<col>_hi90` (when simulated), "
+    "`<col>_z` and lagged copies; then each classified column's class probabilities. "
+    "Example: to pair a year-class spawned in year Y with the bottom "
     "temperature of its first summer (Y + 1), use the row of year Y + 1 and `bottom_mean_c`; "
     "with the summer before spawning, use the row of year Y + 1 and `bottom_mean_c_lag2`.",
     (
@@ -659,8 +704,46 @@ COVARIATES = Table(
                "float"),
         Column("<col>_lag<k>, <col>_z_lag<k>", "as above", "The value (and z) of k years "
                "earlier, on the later year's row; aligned by year, never by row.", "float"),
+        Column("<col>_p_cold, <col>_p_average, <col>_p_warm", "1", "Class probabilities of "
+               "a classified column (classify.columns) given its `_sd`, as in classes.csv.",
+               "float"),
     ),
 )
+
+
+def covariates_layout(columns: Sequence[str], lags: Sequence[int],
+                      classified: Sequence[str] = ()) -> Table:
+    """Layout of ``covariates.csv`` for the chosen columns, lags and classified columns.
+
+    Parameters
+    ----------
+    columns
+        The covariate columns (``covariates.columns``, region copies included).
+    lags
+        The lags. [years]
+    classified
+        Columns whose class probabilities are added.
+
+    Returns
+    -------
+    Table
+        The concrete, ordered layout (the template rows of :data:`COVARIATES` expanded).
+    """
+    cols = [COVARIATES.get("year")]
+    for col in columns:
+        cols.append(Column(col, "as indices.csv", "The index.", "float"))
+        cols += [Column(f"{col}{s}", "as indices.csv", f"Its {m}.", "float")
+                 for s, m in _STAT_SUFFIXES.items()]
+        cols.append(Column(f"{col}_z", "1", COVARIATES.get("<col>_z").meaning, "float"))
+    for col in columns:
+        for k in lags:
+            cols += [Column(f"{col}_lag{k}", "as indices.csv", f"{col} of {k} years earlier.",
+                            "float"),
+                     Column(f"{col}_z_lag{k}", "1", f"{col}_z of {k} years earlier.", "float")]
+    for col in classified:
+        cols += [Column(f"{col}_p_{c}", "1", f"Probability of a {c} year of {col}.", "float")
+                 for c in ("cold", "average", "warm")]
+    return Table(COVARIATES.name, COVARIATES.description, tuple(cols))
 
 REVISIONS = Table(
     "revisions.csv",
@@ -703,6 +786,69 @@ OUTPUT_TABLES: tuple[Table, ...] = (QC, indices_table([2.0, 0.0], with_timing=Tr
                                     PROJECTION, EMERGENCE, COVARIATES, REVISIONS,
                                     MANIFEST, CASTS_FROM_PROFILES, ICE_FIELDS)
 INPUT_TABLES: tuple[Table, ...] = (CASTS, ICE, TRAJECTORIES, PROFILES)
+
+#: The CSV outputs whose layout is fixed, by file name (``casts.csv`` is the casts table
+#: made from profiles).
+FIXED_CSV_TABLES: dict[str, Table] = {
+    t.name: t for t in (QC, CLASSES, SHIFTS, REGIMES, SKILL, HINDCAST, PROJECTION, EMERGENCE,
+                        REVISIONS, ICE_FIELDS)}
+FIXED_CSV_TABLES["casts.csv"] = CASTS_FROM_PROFILES
+
+
+def _thresholds_in(columns: Sequence[str]) -> list[float]:
+    found: list[float] = []
+    for c in columns:
+        t = threshold_from_column(c)
+        if t is not None and c == area_column(t) and t not in found:
+            found.append(t)
+    return found
+
+
+def output_table(name: str, columns: Sequence[str]) -> Table:
+    """The declared layout of the CSV output ``name`` for a frame with ``columns``.
+
+    Fixed layouts come from :data:`FIXED_CSV_TABLES`. The layouts that depend on the run
+    are built by their functions from what the frame shows: ``indices.csv`` and
+    ``regions.csv`` (thresholds from the ``below_<T>c_km2`` columns; simulations,
+    survey-day drift and surface columns when present) and ``covariates.csv`` (the
+    columns that have a ``_z``, the ``_lag<k>`` lags, the ``_p_cold`` columns).
+
+    Parameters
+    ----------
+    name
+        The file name, e.g. ``qc.csv``.
+    columns
+        The frame's columns.
+
+    Returns
+    -------
+    Table
+        The layout to write with (see :meth:`Table.conform`).
+
+    Raises
+    ------
+    ValueError
+        ``name`` is no declared CSV output (a programming error).
+    """
+    import re
+
+    cols = [str(c) for c in columns]
+    if name in FIXED_CSV_TABLES:
+        return FIXED_CSV_TABLES[name]
+    if name == "indices.csv":
+        return indices_table(_thresholds_in(cols), with_sims="bottom_mean_c_sd" in cols,
+                             with_timing="timing_rate_c_per_day" in cols,
+                             with_surface="surface_mean_c" in cols)
+    if name == "regions.csv":
+        return regions_table(_thresholds_in(cols), with_sims="bottom_mean_c_sd" in cols)
+    if name == "covariates.csv":
+        chosen = [c for c in cols if f"{c}_z" in cols and c != "year"]
+        lags = sorted({int(m.group(1)) for c in cols if (m := re.search(r"_lag(\d+)$", c))})
+        classified = [c.removesuffix("_p_cold") for c in cols if c.endswith("_p_cold")]
+        return covariates_layout(chosen, lags, classified)
+    known = ", ".join([*FIXED_CSV_TABLES, "indices.csv", "regions.csv", "covariates.csv"])
+    raise ValueError(f"{name} is not a declared CSV output (declared: {known}); declare its "
+                     "table in coldindex/schema.py.")
 
 
 def _render_table(table: Table) -> list[str]:

@@ -1,11 +1,24 @@
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+from coldindex.io.writers import write_table
 from coldindex.schema import (
     CASTS,
+    HINDCAST,
+    QC,
     area_column,
+    covariates_layout,
     indices_table,
+    output_table,
     render_outputs_md,
     threshold_label,
 )
-from tests.conftest import ROOT
+from tests.conftest import ROOT, SAMPLE, synthetic_casts
 
 
 def test_threshold_labels_are_shortest_form():
@@ -39,3 +52,115 @@ def test_outputs_doc_matches_schema():
     assert text == render_outputs_md(), (
         "docs/outputs.md drifted from coldindex/schema.py; regenerate it with "
         "`python -m coldindex.schema > docs/outputs.md`")
+
+
+# --------------------------------------------------------------------------------------
+# The schema is the single source of the output columns
+# --------------------------------------------------------------------------------------
+
+def test_writer_refuses_an_undeclared_column(tmp_path):
+    frame = pd.DataFrame({"year": [2001], "observed": [1.0], "predicted": [1.1],
+                          "persistence": [0.9], "skill_guess": [0.5]})
+    with pytest.raises(ValueError, match="undeclared column.*skill_guess"):
+        write_table(frame, tmp_path / "hindcast.csv")
+    with pytest.raises(ValueError, match="skill_guess"):
+        write_table(frame, tmp_path / "other.csv", HINDCAST)
+    assert not (tmp_path / "hindcast.csv").exists() and not (tmp_path / "other.csv").exists()
+    with pytest.raises(ValueError, match="not a declared CSV output"):
+        write_table(frame.drop(columns="skill_guess"), tmp_path / "notes.csv")
+
+
+def test_writer_orders_by_the_schema_and_drops_internal_columns(tmp_path):
+
+    frame = pd.DataFrame({"flag": ["ok"], "detail": [""], "doy": [190.0], "bottom_c": [1.0],
+                          "lon": [179.5], "lat": [60.5], "station": ["A"], "year": [2001],
+                          "row": [2], "date": ["2001-07-09"], "depth_m": [100.0]})
+    write_table(frame, tmp_path / "qc.csv")
+    assert (tmp_path / "qc.csv").read_text().splitlines()[0] == ",".join(QC.names)
+
+
+def test_variable_layouts_follow_their_builders():
+    names = indices_table([1.5, -1], with_sims=False).names
+    assert output_table("indices.csv", names).names == names
+    assert output_table("indices.csv", [*names, "surface_mean_c"]).get("surface_mean_c")
+    cov = covariates_layout(["bottom_mean_c"], [1, 2], ["below_0c_km2"]).names
+    assert cov[:6] == ["year", "bottom_mean_c", "bottom_mean_c_sd", "bottom_mean_c_lo90",
+                       "bottom_mean_c_hi90", "bottom_mean_c_z"]
+    assert cov[6:] == ["bottom_mean_c_lag1", "bottom_mean_c_z_lag1", "bottom_mean_c_lag2",
+                       "bottom_mean_c_z_lag2", "below_0c_km2_p_cold", "below_0c_km2_p_average",
+                       "below_0c_km2_p_warm"]
+    written = [c for c in cov if not c.endswith(("_lo90", "_hi90", "_sd"))]
+    assert output_table("covariates.csv", written).conform(
+        pd.DataFrame(columns=written)).columns.tolist() == written
+
+
+@pytest.fixture(scope="module")
+def written(tmp_path_factory) -> tuple[Path, dict[str, str]]:
+    """Every command run once on small inputs (the hostile battery's), its outputs kept."""
+    from coldindex.cli import app
+    from tests.test_hostile import CONFIG, _domain, _ice, _series, _traj
+    from tests.test_regions import EAST_N, EAST_S, WEST, _collection
+
+    d = tmp_path_factory.mktemp("schema")
+    synthetic_casts(years=(2001, 2002, 2003, 2004), n_side=6).to_csv(d / "casts.csv",
+                                                                     index=False)
+    _domain(d / "domain.geojson")
+    _series(d / "series.csv")
+    _ice(d / "ice.csv")
+    _traj(d / "traj.csv")
+    (d / "regions.geojson").write_text(json.dumps(_collection(WEST, EAST_S, EAST_N)))
+    (d / "coldindex.toml").write_text(CONFIG)
+    casts, dom = str(d / "casts.csv"), str(d / "domain.geojson")
+    runs = {
+        "check": ["check", casts, "--domain", dom, "--min-casts", "20"],
+        "profiles": ["check", "--profiles", str(SAMPLE / "profiles.nc"), "--bathymetry",
+                     str(SAMPLE / "bathymetry.nc"), "--domain", str(SAMPLE / "domain.geojson"),
+                     "--show", "0"],
+        "index": ["index", casts, "--domain", dom, "--min-casts", "20", "--sims", "2",
+                  "--grid-km", "20", "--regions", str(d / "regions.geojson")],
+        "classify": ["classify", str(d / "series.csv"), "--value", "bottom_mean_c"],
+        "shifts": ["shifts", str(d / "series.csv"), "--value", "bottom_mean_c", "--boot", "9"],
+        "skill": ["skill", "--ice", str(d / "ice.csv"), "--target", str(d / "series.csv"),
+                  "--value", "bottom_mean_c"],
+        "project": ["project", str(d / "traj.csv"), "--observed", str(d / "series.csv"),
+                    "--value", "bottom_mean_c", "--adjust", "delta"],
+        "ice": ["ice", str(SAMPLE / "ice_fields.nc"), "--regions",
+                str(SAMPLE / "domain.geojson")],
+        "update": ["update", str(d / "coldindex.toml")],
+    }
+    failed = {}
+    for name, args in runs.items():
+        result = CliRunner().invoke(app, [*args, "--out", str(d / f"out_{name}")])
+        if result.exit_code != 0:
+            failed[f"out_{name}"] = result.output  # failed there, reported by its outputs
+    return d, failed
+
+
+# cli.py writes check's qc.csv with write_csv and the whole QC frame (date, depth_m,
+# salinity, surface_c beside the declared columns); writing it with write_table fixes it.
+CHECK_QC_UNFILTERED = pytest.mark.xfail(strict=True, reason="cli.py check writes qc.csv "
+                                        "without the schema (write_table)")
+
+
+@pytest.mark.parametrize("output", [
+    pytest.param("out_check/qc.csv", marks=CHECK_QC_UNFILTERED),
+    "out_profiles/casts.csv", "out_index/qc.csv", "out_index/indices.csv",
+    "out_index/regions.csv", "out_classify/classes.csv", "out_shifts/shifts.csv",
+    "out_shifts/regimes.csv", "out_skill/skill.csv", "out_skill/hindcast.csv",
+    "out_project/projection.csv", "out_project/emergence.csv", "out_ice/ice_fields.csv",
+    "out_update/release-1/qc.csv", "out_update/release-1/indices.csv",
+    "out_update/release-1/classes.csv", "out_update/release-1/shifts.csv",
+    "out_update/release-1/regimes.csv", "out_update/release-1/covariates.csv",
+    "out_update/release-1/revisions.csv"])
+def test_every_output_has_the_declared_columns_in_declared_order(written, output: str):
+    folder, failed = written
+    run = output.split("/")[0]
+    assert run not in failed, failed.get(run)
+    path = folder / output
+    columns = list(pd.read_csv(path, nrows=0).columns)
+    layout = output_table(path.name, columns)
+    assert [c for c in columns if c not in layout.names] == []  # nothing undeclared
+    assert columns == [c for c in layout.names if c in columns]  # in declared order
+    if path.name in ("qc.csv", "shifts.csv", "hindcast.csv", "ice_fields.csv"):
+        assert columns == [c for c in layout.names if c != "column"]  # nothing left out
+    assert np.all([c.isidentifier() and c == c.lower() for c in columns])

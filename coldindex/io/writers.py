@@ -35,7 +35,7 @@ import xarray as xr
 from coldindex._version import __version__
 from coldindex.domain import Domain, Grid
 from coldindex.errors import ColdindexError, OutputError, os_error_sentence
-from coldindex.schema import threshold_label
+from coldindex.schema import Table, output_table, threshold_label
 
 MANIFEST_NAME = "complete.json"
 """Completion manifest a single command writes last into its output folder."""
@@ -168,6 +168,42 @@ def write_csv(df: pd.DataFrame, target: Path, float_format: str = "%.6g") -> Pat
     """Write a table as UTF-8 CSV with newline line ends, atomically."""
     return _write_with(target, lambda p: df.to_csv(p, index=False, float_format=float_format,
                                                    lineterminator="\n"))
+
+
+def write_table(df: pd.DataFrame, target: Path, table: Table | str | None = None,
+                float_format: str = "%.6g") -> Path:
+    """Write an output table as CSV with the schema's columns in the schema's order.
+
+    The schema (:mod:`coldindex.schema`) is the single source of the output columns: the
+    frame's declared columns are written in declared order, its ``internal`` columns
+    dropped, and a column the schema does not declare is a programming error.
+
+    Parameters
+    ----------
+    df
+        The table.
+    target
+        The file (written atomically, as :func:`write_csv`).
+    table
+        The schema table, or the output's file name for
+        :func:`coldindex.schema.output_table`; None takes ``target``'s name.
+    float_format
+        Format of floating-point values.
+
+    Returns
+    -------
+    Path
+        ``target``.
+
+    Raises
+    ------
+    ValueError
+        The frame carries a column the table does not declare, or the name is no
+        declared output.
+    """
+    layout = table if isinstance(table, Table) else \
+        output_table(table or target.name, list(df.columns))
+    return write_csv(layout.conform(df), target, float_format)
 
 
 def write_json(obj: Any, target: Path) -> Path:
@@ -509,8 +545,8 @@ def write_outputs(folder: Path, files: Mapping[str, object],
     written = []
     for name, obj in files.items():
         target = folder / name
-        if isinstance(obj, pd.DataFrame):
-            written.append(write_csv(obj, target))
+        if isinstance(obj, pd.DataFrame):  # columns selected and ordered by the schema
+            written.append(write_table(obj, target))
         elif isinstance(obj, bytes):
             written.append(write_bytes(obj, target))
         else:
