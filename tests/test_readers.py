@@ -205,9 +205,11 @@ def test_day_first_detected_and_median_doy_right(tmp_path: Path):
 
 
 def test_month_first_detected(tmp_path: Path):
-    p = _dated(tmp_path, ["01/10/2019", "01/13/2019 14:30", "2019-01-12"])
+    p = _dated(tmp_path, ["01/10/2019", "01/13/2019 14:30", "2019-01-12", "1/9/2019 2:30 PM"])
     assert read_casts(p)["date"].tolist() == ["2019-01-10", "2019-01-13T14:30:00",
-                                              "2019-01-12"]
+                                              "2019-01-12", "2019-01-09 2:30 PM"]
+    qc = run_qc(read_casts(p)).table
+    assert qc["flag"].eq("ok").all()
 
 
 def test_ambiguous_dates_refused_with_one_sentence(tmp_path: Path):
@@ -238,6 +240,8 @@ def test_explicit_date_format_honoured(tmp_path: Path):
     (["25.01.2019", "31.02.2019"], "row 3: column 'date' holds '31.02.2019', which is not a "
                                    "date when read day first"),
     (["25.01.19"], "row 2: column 'date' holds '25.01.19', a date with a two-digit year"),
+    (["25.01.2019 26:10"], "row 2: column 'date' holds '25.01.2019 26:10', which is not a "
+                           "date"),
 ])
 def test_odd_dates_refused(tmp_path: Path, dates: list[str], needle: str):
     with pytest.raises(InputError) as exc:

@@ -45,9 +45,10 @@ the header being row 1 (blank lines count, as a spreadsheet shows them)."""
 _COMMA_DECIMAL = re.compile(r"[-+]?\d*,\d+(?:[eE][-+]?\d+)?")
 _POINT_DECIMAL = re.compile(r"[-+]?(?:\d+\.\d*|\.\d+)(?:[eE][-+]?\d+)?")
 # Day and month in either order, a four-digit year, optionally a time: 10.01.2019,
-# 1/10/2019 14:30, 10-01-2019T06:00:00. ISO dates (year first) are not of this form.
-_DAY_MONTH_YEAR = re.compile(r"(\d{1,2})([./-])(\d{1,2})\2(\d{4})"
-                             r"(?:[ T](\d{1,2}):(\d{2})(?::(\d{2}))?)?")
+# 1/10/2019 14:30, 10-01-2019T06:00:00, 1/10/2019 2:30 PM. ISO dates (year first) are not
+# of this form.
+_DAY_MONTH_YEAR = re.compile(r"(\d{1,2})([./-])(\d{1,2})\2(\d{4})((?:[ T]|, ?)\S.*)?")
+_CLOCK = re.compile(r"[ T](\d{1,2}):(\d{2})(?::(\d{2}))?")
 _TWO_DIGIT_YEAR = re.compile(r"\d{1,2}([./-])\d{1,2}\1\d{2}(?:[ T].*)?")
 _TIME_DIRECTIVES = ("%H", "%I", "%M", "%S", "%X", "%c", "%T", "%p", "%f")
 
@@ -341,7 +342,7 @@ def _has_time(fmt: str) -> bool:
 def normalise_dates(df: pd.DataFrame, columns: Sequence[str], path: object,
                     date_format: str | None = None,
                     option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
-    """Rewrite the dates of ``columns`` as ISO 8601 (``YYYY-MM-DD``, ``THH:MM:SS`` if timed).
+    """Rewrite the dates of ``columns`` year first (ISO 8601: ``YYYY-MM-DD[THH:MM:SS]``).
 
     Parameters
     ----------
@@ -424,12 +425,17 @@ def normalise_dates(df: pd.DataFrame, columns: Sequence[str], path: object,
                                  "day-first and month-first cannot be told apart; give the "
                                  f"date format ({opt}, e.g. %d.%m.%Y or %m/%d/%Y).")
             day, month = (first, second) if day_first.any() else (second, first)
-            timed = p[4].notna()
-            stamp = (p[3] + "-" + month.map("{:02d}".format) + "-" + day.map("{:02d}".format)
-                     + ("T" + p[4].fillna("0").str.zfill(2) + ":" + p[5].fillna("00") + ":"
-                        + p[6].fillna("00")).where(timed, ""))
-            check = pd.to_datetime(stamp, format="ISO8601", errors="coerce")
-            bad_date = check.isna()
+            day_text = (p[3] + "-" + month.map("{:02d}".format) + "-"
+                        + day.map("{:02d}".format))
+            rest = p[4].fillna("")
+            clock = rest.str.extract("^" + _CLOCK.pattern + "$")
+            hms = ("T" + clock[0].str.zfill(2) + ":" + clock[1] + ":" + clock[2].fillna("00"))
+            # A plain clock time becomes ISO; any other time part is kept after a space.
+            rest = hms.where(clock[0].notna(), (" " + rest.str.lstrip(" T,")).where(
+                rest.ne(""), ""))
+            stamp = day_text + rest
+            bad_date = (pd.to_datetime(day_text, format="%Y-%m-%d", errors="coerce").isna()
+                        | pd.to_datetime(stamp, format="mixed", errors="coerce").isna())
             if bad_date.any():
                 r = int(bad_date[bad_date].index[0])
                 order = "day first" if day_first.any() else "month first"
