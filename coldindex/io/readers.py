@@ -3,6 +3,13 @@
 Tables are read as text first (UTF-8, then Latin-1), their delimiter sniffed,
 headers mapped to ours (``ours=theirs``), and required columns checked; values
 stay strings so that quality control can tell a blank from a non-number.
+
+Regional exports are understood, never guessed: numbers written with a decimal
+comma are rewritten with a point (detected, or given as ``decimal``), dates
+written day and month in either order are rewritten year first (the order
+detected from a day above 12, or given as ``date_format``), and a file that
+leaves either open is refused in one sentence naming the option. Every row
+carries ``row``, its number as a spreadsheet shows the file (header = row 1).
 """
 
 from __future__ import annotations
