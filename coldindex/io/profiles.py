@@ -108,8 +108,8 @@ def _read_long_table(path: Path, mapping: Mapping[str, str], *, decimal: str | N
                          "with --profile-columns depth_m=YOUR_HEADER (or pressure_dbar=...).")
     src = str(path)
     num = {c: numeric_column(raw, c, src, allow_blank=c not in ("lat", "lon"))
-           for c in ("lat", "lon", "temperature_c", "depth_m", "pressure_dbar", "salinity",
-                     "bottom_depth_m") if c in raw.columns}
+           for c in (col.name for col in PROFILES.columns if col.kind == "float")
+           if c in raw.columns}
     cast = raw["cast"].astype(str).str.strip()
     if cast.eq("").any():
         r = raw.loc[cast.eq(""), "row"].iloc[0]
