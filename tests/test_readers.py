@@ -280,3 +280,18 @@ def test_month_outside_1_to_12_refused(tmp_path: Path, month: str):
     with pytest.raises(InputError, match=f"row 3: column 'month' holds '{month}', not a "
                                          "calendar month 1..12"):
         read_ice(p)
+
+
+def test_profile_long_table_with_decimal_commas_and_day_first_times(tmp_path: Path):
+    from coldindex.io.profiles import read_profiles
+
+    p = tmp_path / "profiles.csv"
+    p.write_bytes(("cast;time;lat;lon;temperature_c;depth_m\n"
+                   "K1;13.07.2019 06:30;60,5;179,5;2,5;10\n"
+                   "K1;13.07.2019 06:30;60,5;179,5;1,25;50,5\n"
+                   "K2;02.07.2019;60,6;179,5;3;10\n").encode("latin-1"))
+    data = read_profiles(p)
+    assert data.casts["time"].dt.strftime("%Y-%m-%d %H:%M").tolist() == ["2019-07-13 06:30",
+                                                                         "2019-07-02 00:00"]
+    assert data.samples["depth_m"].tolist() == [10.0, 50.5, 10.0]
+    assert data.samples["temperature_c"].tolist() == [2.5, 1.25, 3.0]
