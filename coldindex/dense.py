@@ -47,6 +47,7 @@ spatial data sets. J. R. Stat. Soc. B 66, 275-296 (fits to subsets of the data).
 
 from __future__ import annotations
 
+import hashlib
 from collections.abc import Iterator
 from dataclasses import dataclass
 
@@ -74,10 +75,12 @@ from coldindex.interpolate import (
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int_]
 
-#: Casts a year above which :func:`make_kriging` uses :class:`LocalKriging`. Measured
-#: (benchmarks/bench_dense.py): from here on local kriging is faster than exact kriging
-#: on a 19,000-cell grid and exact kriging's four n x n matrices pass 250 MB.
-DENSE_THRESHOLD = 2000
+#: Casts a year above which :func:`make_kriging` uses :class:`LocalKriging` and
+#: :func:`fit_year` a subsample. Measured (benchmarks/bench_dense.py threshold, sample
+#: domain, 5 km grid): exact map, SD and LOO cost 1.5 s at 1,000 casts and 7.7 s at 2,000,
+#: local 2.0 s and 2.1 s; the crossover lies between, and at 1,500 casts the exact
+#: REML fit is as large as the dense path's subsample fit.
+DENSE_THRESHOLD = 1500
 #: Nearest casts every target is kriged from (at least; a tile's neighbourhood is the union).
 NEIGHBOURS = 128
 #: Largest stratified subsample for the variogram fit and the drift of a dense year.
@@ -161,34 +164,13 @@ def _vecchia_order(xy: FloatArray) -> IntArray:
     return np.lexsort((q[:, 1], q[:, 0], h))
 
 
-def vecchia_whitener(xy: FloatArray, variogram: Variogram, m: int = VECCHIA_NEIGHBOURS
-                     ) -> tuple[IntArray, IntArray, FloatArray, FloatArray]:
-    """Sparse inverse Cholesky factor of the data covariance by Vecchia's approximation.
-
-    Each cast, in a scattered order, is conditioned on its ``m`` nearest casts
-    earlier in the order: ``x_i - b_i^T x_N(i)`` has variance ``d_i``. Dividing by
-    ``sqrt(d_i)`` whitens the data (``U^T x`` with ``U U^T ~ K^-1``), so
-    generalised least squares over all casts is ordinary least squares on whitened
-    values.
-
-    Returns
-    -------
-    tuple
-        Cast of each row (n,), its conditioning casts (n, m) (``-1`` where fewer
-        exist), coefficients ``b`` (n, m) and ``sqrt(d)`` (n,) [°C].
-
-    References
-    ----------
-    Vecchia, A. V. (1988). Estimation and model identification for continuous
-    spatial processes. J. R. Stat. Soc. B 50, 297-312.
-    Guinness, J. (2018). Permutation and grouping methods for sharpening Gaussian
-    process approximations. Technometrics 60, 415-429.
-    """
+def vecchia_neighbours(xy: FloatArray, m: int = VECCHIA_NEIGHBOURS) -> IntArray:
+    """The ``m`` nearest earlier casts of each cast in :func:`_vecchia_order`, (n, m); -1 pads."""
     n = len(xy)
     order = _vecchia_order(xy)
     rank = np.empty(n, np.int64)
     rank[order] = np.arange(n)
-    m = int(min(m, n - 1))
+    m = int(max(min(m, n - 1), 1))
     nbr = np.full((n, m), -1, np.int64)
     # Ranks in [s, e) find earlier casts in a tree of the first e casts, where at least
     # half the casts are earlier: 3m nearest hold about m or more of them.
@@ -206,6 +188,42 @@ def vecchia_whitener(xy: FloatArray, variogram: Variogram, m: int = VECCHIA_NEIG
         r_i, c_i = np.nonzero(keep)
         nbr[rows[r_i], pos[r_i, c_i]] = idx[r_i, c_i]
         s = e
+    return nbr
+
+
+def vecchia_whitener(xy: FloatArray, variogram: Variogram, nbr: IntArray
+                     ) -> tuple[IntArray, FloatArray, FloatArray]:
+    """Sparse inverse Cholesky factor of the data covariance by Vecchia's approximation.
+
+    Each cast, in a scattered order, is conditioned on its ``m`` nearest casts
+    earlier in the order: ``x_i - b_i^T x_N(i)`` has variance ``d_i``. Dividing by
+    ``sqrt(d_i)`` whitens the data (``U^T x`` with ``U U^T ~ K^-1``), so
+    generalised least squares over all casts is ordinary least squares on whitened
+    values.
+
+    Parameters
+    ----------
+    xy
+        Cast positions, (n, 2). [km]
+    variogram
+        The covariance model (nugget included in the data covariance).
+    nbr
+        Conditioning casts from :func:`vecchia_neighbours`.
+
+    Returns
+    -------
+    tuple
+        The conditioning casts (n, m) (``-1`` where fewer exist), coefficients ``b``
+        (n, m) and ``sqrt(d)`` (n,) [°C].
+
+    References
+    ----------
+    Vecchia, A. V. (1988). Estimation and model identification for continuous
+    spatial processes. J. R. Stat. Soc. B 50, 297-312.
+    Guinness, J. (2018). Permutation and grouping methods for sharpening Gaussian
+    process approximations. Technometrics 60, 415-429.
+    """
+    n, m = nbr.shape
     c0 = variogram.sill + variogram.nugget
     jitter = 1e-10 * c0
     b = np.zeros((n, m))
@@ -215,26 +233,69 @@ def vecchia_whitener(xy: FloatArray, variogram: Variogram, m: int = VECCHIA_NEIG
         nb = nbr[sl]
         ok = nb >= 0
         P = xy[np.where(ok, nb, 0)]  # (t, m, 2)
-        dNN = np.sqrt(((P[:, :, None, :] - P[:, None, :, :]) ** 2).sum(-1))
+        dNN = np.hypot(P[:, :, None, 0] - P[:, None, :, 0], P[:, :, None, 1] - P[:, None, :, 1])
         K = variogram.covariance(dNN)
         K += (variogram.nugget + jitter) * np.eye(m)[None]
         both = ok[:, :, None] & ok[:, None, :]
         K = np.where(both, K, np.eye(m)[None] * c0)  # missing conditioning casts: inert
-        k0 = variogram.covariance(np.sqrt(((P - xy[sl][:, None, :]) ** 2).sum(-1)))
+        k0 = variogram.covariance(np.hypot(P[:, :, 0] - xy[sl][:, None, 0],
+                                           P[:, :, 1] - xy[sl][:, None, 1]))
         k0 = np.where(ok, k0, 0.0)
         bb = np.linalg.solve(K, k0[:, :, None])[:, :, 0]
         b[sl] = bb
         sd[sl] = np.sqrt(np.maximum(c0 + jitter - np.einsum("ij,ij->i", bb, k0), jitter))
-    return np.arange(n), nbr, b, sd
+    return nbr, b, sd
 
 
-def _whiten(W: tuple[IntArray, IntArray, FloatArray, FloatArray], X: FloatArray
-            ) -> FloatArray:
+def _whiten(W: tuple[IntArray, FloatArray, FloatArray], X: FloatArray) -> FloatArray:
     """``U^T X`` for the Vecchia factor ``W`` and columns ``X`` (n, ...)."""
-    _, nbr, b, sd = W
+    nbr, b, sd = W
     Xn = X[np.where(nbr >= 0, nbr, 0)]  # (n, m, ...)
     shape = b.shape + (1,) * (X.ndim - 1)
     return (X - np.sum(b.reshape(shape) * Xn, axis=1)) / sd.reshape((-1,) + (1,) * (X.ndim - 1))
+
+
+class Geometry:
+    """What depends on the cast positions only, shared by every variogram of a year.
+
+    The k-d tree, the tile size, the Vecchia conditioning sets and each tiling of
+    targets with its neighbourhoods (cached by the targets' bytes): the parameter
+    draws of the simulations reuse them.
+
+    Parameters
+    ----------
+    xy
+        Cast positions, (n, 2). [km]
+    neighbours
+        Nearest casts of every target.
+    """
+
+    def __init__(self, xy: FloatArray, neighbours: int) -> None:
+        self.xy = xy
+        n = len(xy)
+        self.k = int(min(neighbours, n))
+        self.tree = cKDTree(xy)
+        span = np.maximum(np.ptp(xy, axis=0), 1e-6)
+        # Tiles holding about half a neighbourhood of casts each.
+        self.tile_km = float(np.sqrt(span[0] * span[1] * 0.5 * self.k / n))
+        self.vecchia = vecchia_neighbours(xy)
+        self._tilings: dict[tuple[tuple[int, ...], bytes], list[tuple[IntArray, IntArray]]] = {}
+
+    def neighbourhood(self, targets: FloatArray) -> IntArray:
+        """Union of the nearest casts of every target, sorted. (N,)"""
+        _, idx = self.tree.query(targets, k=self.k)
+        return np.unique(idx)
+
+    def tiling(self, targets: FloatArray) -> list[tuple[IntArray, IntArray]]:
+        """Tiles of the targets, each with its neighbourhood of casts (cached)."""
+        key = (targets.shape, hashlib.blake2b(np.ascontiguousarray(targets).tobytes(),
+                                              digest_size=16).digest())
+        if key not in self._tilings:
+            if len(self._tilings) > 4:
+                self._tilings.clear()
+            self._tilings[key] = [(t, self.neighbourhood(targets[t]))
+                                  for t in _tiles(targets, self.tile_km)]
+        return self._tilings[key]
 
 
 class LocalKriging:
@@ -267,7 +328,7 @@ class LocalKriging:
 
     def __init__(self, xy: ArrayLike, values: ArrayLike, variogram: Variogram,
                  drift: ArrayLike | None = None, neighbours: int = NEIGHBOURS,
-                 subsample: int = FIT_SUBSAMPLE) -> None:
+                 subsample: int = FIT_SUBSAMPLE, geometry: Geometry | None = None) -> None:
         self.xy = np.asarray(xy, float)
         self.z = np.asarray(values, float)
         n = len(self.z)
@@ -277,28 +338,21 @@ class LocalKriging:
             raise ValueError(f"neighbours needs to be >= 3, got: {neighbours}")
         self.vg = variogram
         self.F = drift_matrix(n, drift)
-        self.k = int(min(neighbours, n))
-        self.tree = cKDTree(self.xy)
+        self.geometry = geometry if geometry is not None else Geometry(self.xy, neighbours)
+        self.k = self.geometry.k
+        self.tile_km = self.geometry.tile_km
         self.sub = stratified_subsample(self.xy, subsample)
         # Drift coefficients: generalised least squares over all casts, Vecchia-whitened.
-        self._white = vecchia_whitener(self.xy, variogram)
+        self._white = vecchia_whitener(self.xy, variogram, self.geometry.vecchia)
         WF = _whiten(self._white, self.F)
         self.G = WF.T @ WF  # F^T K^-1 F, approximately
         self._WF = WF
         self.beta = np.linalg.solve(self.G, WF.T @ _whiten(self._white, self.z))
         self.beta_cov = np.linalg.inv(self.G)
-        span = np.maximum(np.ptp(self.xy, axis=0), 1e-6)
-        # Tiles holding about half a neighbourhood of casts each.
-        self.tile_km = float(np.sqrt(span[0] * span[1] * 0.5 * self.k / n))
 
     def beta_of(self, X: FloatArray) -> FloatArray:
         """Drift coefficients of simulated cast values ``X`` (n, b), as for the data. (p, b)"""
         return np.asarray(np.linalg.solve(self.G, self._WF.T @ _whiten(self._white, X)), float)
-
-    def neighbourhood(self, targets: FloatArray) -> IntArray:
-        """Union of the nearest casts of every target, sorted. (N,)"""
-        _, idx = self.tree.query(targets, k=self.k)
-        return np.unique(idx)
 
     def _system(self, nb: IntArray) -> FloatArray:
         K = self.vg.covariance(cdist(self.xy[nb], self.xy[nb]))
@@ -340,8 +394,7 @@ class LocalKriging:
         var = np.empty(m) if return_variance else None
         c00 = self.vg.sill + (0.0 if filter_nugget else self.vg.nugget)
         resid = self.z - self.F @ self.beta
-        for t in _tiles(xy0, self.tile_km):
-            nb = self.neighbourhood(xy0[t])
+        for t, nb in self.geometry.tiling(xy0):
             L = self._system(nb)
             d = cdist(xy0[t], self.xy[nb])
             C = self.vg.covariance(d)
@@ -375,8 +428,7 @@ class LocalKriging:
         err = np.empty(n)
         var = np.empty(n)
         resid = self.z - self.F @ self.beta
-        for t in _tiles(self.xy, self.tile_km):
-            nb = self.neighbourhood(self.xy[t])
+        for t, nb in self.geometry.tiling(self.xy):
             L = self._system(nb)
             a = sla.cho_solve((L, True), resid[nb], check_finite=False)
             pos = np.searchsorted(nb, t)
@@ -469,8 +521,7 @@ class _Solver:
         """Tiles of cells, each with its casts and Cholesky factor (None: the global one)."""
         kr = self.kriging
         if isinstance(kr, LocalKriging):
-            for t in _tiles(cells, kr.tile_km):
-                nb = kr.neighbourhood(cells[t])
+            for t, nb in kr.geometry.tiling(cells):
                 yield t, nb, kr._system(nb)
         else:
             every = np.arange(len(kr.z))
@@ -600,15 +651,14 @@ def simulate_blocked(kr: AnyKriging, fit: Fit, xy: FloatArray, z: FloatArray,
     methods: set[str] = set()
     coarse: set[float] = set()
     clipped = 0.0
-    neighbours = kr.k if isinstance(kr, LocalKriging) else NEIGHBOURS
     for vg, c in zip(draws, counts, strict=True):
         if c == 0:
             continue
         kd: AnyKriging
         if vg == kr.vg:
             kd = kr
-        elif local:
-            kd = LocalKriging(xy, z, vg, drift, neighbours=neighbours)
+        elif isinstance(kr, LocalKriging):
+            kd = LocalKriging(xy, z, vg, drift, geometry=kr.geometry)
         else:
             kd = Kriging(xy, z, vg, drift)
         cell = grid.cell_km
