@@ -138,6 +138,17 @@ def test_decimal_comma_given_explicitly_and_point_refused(tmp_path: Path):
         read_casts(p, decimal=";")
 
 
+def test_thousands_points_with_a_decimal_comma(tmp_path: Path):
+    p = tmp_path / "deep.csv"
+    p.write_text("year;lat;lon;bottom_c;depth_m\n2019;60,5;179,5;1,5;1.234,5\n"
+                 "2019;60,6;179,5;-1,25;987,0\n")
+    assert read_casts(p)["depth_m"].tolist() == ["1234.5", "987.0"]
+    alone = tmp_path / "alone.csv"  # 1.234 with no comma: a thousand or one and a bit
+    alone.write_text("year;lat;lon;bottom_c;depth_m\n2019;60,5;179,5;1,5;1.234\n")
+    with pytest.raises(InputError, match="row 2: column 'depth_m' holds '1.234'"):
+        read_casts(alone)
+
+
 def test_mixed_decimal_marks_refused_naming_row_and_column(tmp_path: Path):
     p = tmp_path / "mixed.csv"
     p.write_bytes("year;lat;lon;bottom_c\n2019;60,5;179,5;1,2\n2019;60,6;179,6;1.3\n"

@@ -47,9 +47,10 @@ FIRST_DATA_ROW = 2
 """Row number of the first data row: rows are numbered as a spreadsheet shows the file,
 the header being row 1 (blank lines count, as a spreadsheet shows them)."""
 
-# A number written with a decimal comma (``-1,25``, ``,5``, ``1,5E-3``), and one written with
-# a decimal point; plain integers are neither and read the same under both marks.
-_COMMA_DECIMAL = re.compile(r"[-+]?\d*,\d+(?:[eE][-+]?\d+)?")
+# A number written with a decimal comma (``-1,25``, ``,5``, ``1,5E-3``, ``1.234,5`` with
+# thousands points), and one written with a decimal point; plain integers are neither and
+# read the same under both marks.
+_COMMA_DECIMAL = re.compile(r"[-+]?(?:\d{1,3}(?:\.\d{3})+|\d*),\d+(?:[eE][-+]?\d+)?")
 _POINT_DECIMAL = re.compile(r"[-+]?(?:\d+\.\d*|\.\d+)(?:[eE][-+]?\d+)?")
 # Day and month in either order, a four-digit year, optionally a time: 10.01.2019,
 # 1/10/2019 14:30, 10-01-2019T06:00:00, 1/10/2019 2:30 PM. ISO dates (year first) are not
@@ -338,7 +339,8 @@ def decimal_marks(df: pd.DataFrame, columns: Sequence[str], path: object,
     out = df.copy()
     for c, m in comma.items():
         if m.any():
-            out.loc[m, c] = out.loc[m, c].str.replace(",", ".", regex=False)
+            out.loc[m, c] = (out.loc[m, c].str.replace(".", "", regex=False)
+                             .str.replace(",", ".", regex=False))
     return out
 
 
