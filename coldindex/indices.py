@@ -38,7 +38,7 @@ from coldindex.interpolate import (
     idw_predict,
     weighted_summaries,
 )
-from coldindex.parallel import YearPool
+from coldindex.parallel import YearPool, warm_up
 from coldindex.progress import ProgressEvent, emit
 from coldindex.regions import RegionWeights, node_weights
 from coldindex.schema import area_column, indices_table, regions_table
@@ -313,6 +313,7 @@ def compute_indices(casts: pd.DataFrame, domain: Domain, grid: Grid, options: In
     IndexResult
         The table, the fields and the choices made.
     """
+    warm_up(workers, scheduler)  # the worker processes' imports overlap the screening
     casts = casts.copy()
     x, y = domain.to_xy(casts["lon"].to_numpy(float), casts["lat"].to_numpy(float))
     casts["x_km"], casts["y_km"] = x, y

@@ -25,7 +25,7 @@ import multiprocessing as mp
 import os
 import signal
 from collections.abc import Callable, Sequence
-from concurrent.futures import FIRST_EXCEPTION, Future, ProcessPoolExecutor, wait
+from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from types import TracebackType
 from typing import Any, TypeVar
@@ -44,8 +44,13 @@ One thread a task: years are the unit of parallel work, and a fixed pool size ma
 serial and parallel runs do the same arithmetic.
 """
 
-PRELOAD = ["coldindex.indices"]
-"""Modules the forkserver imports once, so the workers it forks start warm."""
+PRELOAD = ["__main__", "coldindex.indices"]
+"""Modules the forkserver imports once, so the workers it forks start warm.
+
+``__main__`` (the caller's script or ``coldindex.cli``, as multiprocessing does by
+default) because every worker imports it again on start; ``coldindex.indices`` for the
+per-year work.
+"""
 
 _SHARED: Any = None
 
@@ -61,6 +66,20 @@ def default_workers() -> int:
 def start_method() -> str:
     """``forkserver`` where available (Linux, macOS), otherwise ``spawn``."""
     return "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
+
+
+def warm_up(workers: int = 2, scheduler: str | None = None) -> None:
+    """Start the process server now, so its imports overlap the caller's own work.
+
+    Optional: call it early (e.g. before reading and checking the casts) in a run that
+    will use ``workers > 1`` local processes; it returns at once. Without it the first
+    :meth:`YearPool.map` waits for the server's imports (about a second or two).
+    """
+    if workers > 1 and scheduler is None and start_method() == "forkserver":
+        from multiprocessing import forkserver
+
+        mp.get_context("forkserver").set_forkserver_preload(PRELOAD)
+        forkserver.ensure_running()
 
 
 def run_pinned(func: Callable[[Any, T], R], shared: Any, item: T,
@@ -118,6 +137,7 @@ class YearPool:
         self._client: Any = None
         self._cluster: Any = None
         self._shared_future: Any = None
+        warm_up(workers, scheduler)
 
     def __enter__(self) -> YearPool:
         return self
@@ -178,8 +198,6 @@ class YearPool:
                        on_done: Callable[[int, R], None] | None) -> list[R]:
         if self._executor is None:
             ctx = mp.get_context(start_method())
-            if ctx.get_start_method() == "forkserver":
-                ctx.set_forkserver_preload(PRELOAD)
             self._executor = ProcessPoolExecutor(max_workers=self.workers, mp_context=ctx,
                                                  initializer=_init_worker,
                                                  initargs=(self.shared,))
@@ -189,7 +207,7 @@ class YearPool:
         pending: set[Future[R]] = set(futures)
         try:
             while pending:
-                done, pending = wait(pending, return_when=FIRST_EXCEPTION)
+                done, pending = wait(pending, return_when=FIRST_COMPLETED)
                 for fut in sorted(done, key=futures.__getitem__):
                     res = fut.result()  # a worker's exception is raised here, as itself
                     results[futures[fut]] = res

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import time
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -111,6 +114,24 @@ def test_map_years_orders_results_and_passes_errors_intact():
     assert map_years(_fails_on_odd, [4, 2, 8, 6], workers=2, shared="f") == [40, 20, 80, 60]
     with pytest.raises(InputError, match=r"^f: item 3 is odd; give even ones\.$"):
         map_years(_fails_on_odd, [2, 3, 4], workers=2, shared="f")
+
+
+def _waits_for_news(flag: str, item: int) -> bool:
+    """Item 0 ends at once; item 1 waits (up to 20 s) until the caller has heard of it."""
+    if item == 0:
+        return True
+    for _ in range(200):
+        if Path(flag).exists():
+            return True
+        time.sleep(0.1)
+    return False
+
+
+def test_each_year_is_reported_as_it_finishes_not_when_all_have(tmp_path):
+    flag = tmp_path / "item 0 reported"
+    heard = map_years(_waits_for_news, [0, 1], workers=2, shared=str(flag),
+                      on_done=lambda i, _: flag.touch() if i == 0 else None)
+    assert heard == [True, True]
 
 
 @pytest.mark.parametrize("workers", [1, 2])
