@@ -21,7 +21,7 @@ from typing import Any, ClassVar
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-from coldindex.errors import ColdindexError, ConfigError, key_naming
+from coldindex.errors import ConfigError, key_naming
 
 # Registries by name: one entry a choice, with the sentence that explains it. Choices,
 # help texts and docs derive from these; the implementing modules keep one function a
@@ -166,6 +166,37 @@ def parse_numbers(text: str, key: str) -> tuple[float, ...]:
         raise Refusal(key, "numbers separated by commas", text) from None
     _need(bool(values), key, "at least one number", text)
     return values
+
+
+MAX_ZONES = 12  # cap on depth zones (each adds a row a year to regions.csv)
+
+
+def parse_depth_zones(text: str, key: str = "index.depth_zones"
+                      ) -> tuple[tuple[float, float], ...]:
+    """Parse ``0-50,50-100,100-200`` into ``((0, 50), (50, 100), (100, 200))``. [m]
+
+    Zones may leave gaps but must not overlap; depths are positive down.
+    """
+    if not text or not text.strip():
+        return ()
+    zones: list[tuple[float, float]] = []
+    for part in text.split(","):
+        bits = part.strip().split("-")
+        try:
+            if len(bits) != 2:
+                raise ValueError
+            lo, hi = float(bits[0]), float(bits[1])
+        except ValueError:
+            raise Refusal(key, "zones lo-hi in metres separated by commas (e.g. 0-50,50-100)",
+                          part.strip()) from None
+        _need(math.isfinite(lo) and math.isfinite(hi) and 0 <= lo < hi, key,
+              "zones lo-hi with 0 <= lo < hi metres", part.strip())
+        zones.append((lo, hi))
+    _need(len(zones) <= MAX_ZONES, key, f"at most {MAX_ZONES} zones", len(zones))
+    order = sorted(zones)
+    for (lo1, hi1), (lo2, _) in zip(order, order[1:], strict=False):
+        _need(lo2 >= hi1, key, "zones that do not overlap", f"{lo1:g}-{hi1:g}, {lo2:g}-...")
+    return tuple(zones)
 
 
 def parse_column_map(text: str | None, option: str = "--columns") -> dict[str, str]:
@@ -328,15 +359,7 @@ class IndexOptions(_Table):
 
     def zones(self) -> tuple[tuple[float, float], ...]:
         """The parsed depth zones (``depth_zones``) [m]."""
-        from coldindex.regions import parse_depth_zones
-
-        if not self.depth_zones:
-            return ()
-        try:
-            return parse_depth_zones(self.depth_zones, "depth_zones")
-        except ColdindexError as exc:
-            raise Refusal("depth_zones", "zones like 0-50,50-100 in metres",
-                          self.depth_zones) from exc
+        return parse_depth_zones(self.depth_zones, "depth_zones")
 
 
 class ReadOptions(_Table):
@@ -440,15 +463,6 @@ class ShiftsConfig(_Table):
     def methods(self) -> tuple[str, ...]:
         """The detectors to run."""
         return tuple(DETECTORS) if self.method == "both" else (self.method,)
-
-    def detector_options(self) -> Any:
-        """The detectors' settings as :class:`coldindex.regimes.ShiftOptions`."""
-        from coldindex.regimes import ShiftOptions
-
-        return ShiftOptions(cutoff=self.cutoff, alpha=self.alpha, huber=self.huber,
-                            prewhiten=self.prewhiten, subsample=self.subsample or None,
-                            min_size=self.min_size, boot=self.boot, seed=self.seed,
-                            null_window=self.null_window, p_max=self.p_max)
 
 
 class SkillConfig(_Table):

@@ -125,8 +125,7 @@ def _check_memory(casts: pd.DataFrame, grid: Grid, options: IndexOptions) -> Non
 
 def region_weights_for(domain: Domain, grid: Grid, options: IndexOptions,
                        bathy: tuple[np.ndarray, np.ndarray, np.ndarray] | None,
-                       regions_path: Path | None, zones_option: str = "--depth-zones"
-                       ) -> tuple[RegionWeights | None, list[str]]:
+                       regions_path: Path | None) -> tuple[RegionWeights | None, list[str]]:
     """Regions (``--regions``) and depth zones (``--depth-zones``) as cell weights, with notes.
 
     The notes report the domain area outside every region and outside every zone.
@@ -137,11 +136,12 @@ def region_weights_for(domain: Domain, grid: Grid, options: IndexOptions,
     notes: list[str] = []
     if regions_path is not None:
         parts.append(rg.region_weights(grid, domain, readers.read_regions(regions_path, domain)))
-    zones = rg.parse_depth_zones(options.depth_zones, zones_option)
+    zones = options.zones()
     if zones:
         if bathy is None:
-            raise InputError(f"{zones_option} needs the bathymetry (--bathymetry or "
-                             "inputs.bathymetry) to place the cells in depth zones.")
+            raise InputError("{option} needs the bathymetry to place the cells in depth "
+                             "zones; give the bathymetry or leave the zones empty.",
+                             option=("index", "depth_zones"))
         depth = np.abs(sample_lonlat_grid(*bathy, grid.lon[grid.mask], grid.lat[grid.mask]))
         parts.append(rg.depth_zone_weights(depth, grid.active_area(), zones))
     total = float(grid.active_area().sum())
@@ -253,11 +253,11 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
     domain: Domain | None = None
     source = "none"
     if domain_path is not None:
-        domain, source = readers.read_domain(domain_path), f"given ({domain_path})"
+        domain, source = readers.read_domain(domain_path), f"given ({domain_path.name})"
     elif previous_out is not None and (previous_out / DOMAIN_NAME).is_file() and _frozen(
             previous_out):
         domain = readers.read_domain(previous_out / DOMAIN_NAME)
-        source = f"frozen ({previous_out / DOMAIN_NAME})"
+        source = f"frozen ({DOMAIN_NAME} of {previous_out.name})"
     qc_kwargs = {"source": str(casts_path), "freeze_tolerance_c": opts.freeze_tolerance_c,
                  "max_bottom_c": opts.max_bottom_c, "default_salinity": opts.default_salinity}
     if domain is None and derive:
@@ -438,12 +438,16 @@ def run_classify(series_path: Path, column: str, options: ClassifyConfig,
 def run_shifts(series_path: Path, column: str, options: ShiftsConfig,
                mapping: Mapping[str, str] | None = None) -> StageRun:
     """Regime shifts of one column with red-noise p-values: ``shifts.csv``, ``regimes.csv``."""
-    from coldindex.regimes import detect_shifts
+    from coldindex.regimes import ShiftOptions, detect_shifts
 
     df = readers.read_series(series_path, column, mapping)
     need = 2 * options.cutoff if "stars" in options.methods else 2 * options.min_size
     _enough(int(df["value"].notna().sum()), need, column, "shift test")
-    res = detect_shifts(df["year"], df["value"], options.methods, options.detector_options())
+    res = detect_shifts(df["year"], df["value"], options.methods, ShiftOptions(
+        cutoff=options.cutoff, alpha=options.alpha, huber=options.huber,
+        prewhiten=options.prewhiten, subsample=options.subsample or None,
+        min_size=options.min_size, boot=options.boot, seed=options.seed,
+        null_window=options.null_window, p_max=options.p_max))
     return StageRun({"shifts.csv": res.shifts, "regimes.csv": res.regimes}, result=res)
 
 
@@ -583,7 +587,7 @@ def index_release_stage(cfg: Config, rel: Path, prev: Path | None,
                      "version); coverage now uses one computed from these casts, frozen from "
                      "now on")
     regions, region_notes = region_weights_for(check.domain, grid, opts, bathy,
-                                               cfg.inputs.regions, "index.depth_zones")
+                                               cfg.inputs.regions)
     notes += region_notes
     res = compute_indices(check.qc.casts, check.domain, grid, opts, bathy, frozen_family=family,
                           frozen_spacing_km=frozen_spacing, regions=regions,

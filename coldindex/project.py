@@ -53,7 +53,7 @@ from scipy.optimize import brentq
 from scipy.special import expit, logit, ndtr, ndtri
 
 from coldindex.classify import Cuts
-from coldindex.errors import InputError
+from coldindex.errors import InputError, TooFewDataError
 from coldindex.schema import EMERGENCE, numeric_column
 
 FloatArray = NDArray[np.float64]
@@ -589,12 +589,12 @@ def check_calibration(n_years: int, calibration: tuple[int, int], explicit: bool
     """
     if n_years >= MIN_CALIBRATION_YEARS or (explicit and accept_short):
         return
-    raise InputError(
+    raise TooFewDataError(
         f"The observed record and the trajectories overlap in {n_years} years "
         f"({calibration[0]}-{calibration[1]}); the bias adjustment needs at least "
-        f"{MIN_CALIBRATION_YEARS}: extend the observed series or start the trajectories "
-        "earlier, or, to accept fewer, give --calibration A-B with --short-calibration "
-        "(project.calibration and project.short_calibration in the config).")
+        f"{MIN_CALIBRATION_YEARS} calibration years: extend the observed series or start the "
+        "trajectories earlier, or, to accept fewer, give {option} A-B and allow a short "
+        "calibration.", option=("project", "calibration"))
 
 
 @dataclass

@@ -21,6 +21,7 @@ import shapely
 from numpy.typing import ArrayLike, NDArray
 from shapely.geometry import MultiPolygon, Polygon, shape
 
+from coldindex.config import MAX_ZONES, parse_depth_zones  # noqa: F401 - the zones' parser
 from coldindex.domain import Domain, Grid, _map_coords, unwrap_lon
 from coldindex.errors import InputError
 
@@ -32,7 +33,6 @@ OVERLAP_TOLERANCE = 1e-6
 #: Most regions in one file (each adds a row per year and a column per covariate).
 MAX_REGIONS = 50
 #: Most depth zones.
-MAX_ZONES = 12
 
 
 @dataclass(frozen=True)
@@ -182,37 +182,6 @@ def region_weights(grid: Grid, domain: Domain,
         w[:, over] *= area[over] / total[over]
     return RegionWeights(names=tuple(n for n, _ in regions), weights=w,
                          outside_km2=float(max(area.sum() - w.sum(), 0.0)), kind="region")
-
-
-def parse_depth_zones(text: str, option: str = "--depth-zones") -> tuple[tuple[float, float], ...]:
-    """Parse ``0-50,50-100,100-200`` into ``((0, 50), (50, 100), (100, 200))``. [m]
-
-    Zones may leave gaps but must not overlap; depths are positive down.
-    """
-    if not text or not text.strip():
-        return ()
-    zones: list[tuple[float, float]] = []
-    for part in text.split(","):
-        bits = part.strip().split("-")
-        try:
-            if len(bits) != 2:
-                raise ValueError
-            lo, hi = float(bits[0]), float(bits[1])
-        except ValueError:
-            raise InputError(f"{option} needs zones lo-hi in metres separated by commas (e.g. "
-                             f"0-50,50-100), got: {part.strip()!r}.") from None
-        if not (np.isfinite(lo) and np.isfinite(hi) and 0 <= lo < hi):
-            raise InputError(f"{option} needs each zone as lo-hi with 0 <= lo < hi metres, got: "
-                             f"{part.strip()!r}.")
-        zones.append((lo, hi))
-    if len(zones) > MAX_ZONES:
-        raise InputError(f"{option} gives {len(zones)} zones; at most {MAX_ZONES} are allowed.")
-    order = sorted(zones)
-    for (lo1, hi1), (lo2, _) in zip(order, order[1:], strict=False):
-        if lo2 < hi1:
-            raise InputError(f"{option}: zones {lo1:g}-{hi1:g} and {lo2:g}-... overlap; give "
-                             "zones that do not.")
-    return tuple(zones)
 
 
 def zone_name(lo: float, hi: float) -> str:

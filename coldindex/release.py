@@ -32,7 +32,7 @@ from coldindex.errors import (
     os_error_sentence,
 )
 from coldindex.io import files as io_files
-from coldindex.io import releases, writers
+from coldindex.io import readers, releases, writers
 from coldindex.io.releases import LATEST_NAME, LOCK_NAME, RELEASE_FORMAT
 from coldindex.report.summary import WITHDRAWN_SHIFT
 
@@ -398,7 +398,9 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     written.append(writers.write_csv(revisions, rel / "revisions.csv"))
 
     progress("figures")
-    figs = summary.release_figures(cfg, indices, classes, shifts, skill, proj, index)
+    coast = (readers.read_coastline(cfg.inputs.coastline, index.domain)
+             if cfg.inputs.coastline else None)
+    figs = summary.release_figures(cfg, indices, classes, shifts, index, coast)
     written += writers.write_outputs(rel, {}, figs, ("svg", "png"), "figures")
     pngs = {name: io_files.read_bytes(rel / "figures" / f"{name}.png")
             for name in (*figs, *(skill.figures if skill else {}),

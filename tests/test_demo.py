@@ -119,15 +119,12 @@ def test_demo_raw_sources_tell_the_same_story():
 
 @pytest.mark.slow
 def test_update_runs_from_profiles_and_ice_fields_alone(tmp_path: Path):
-    import dataclasses
-
     from coldindex.config import load_config
-    from coldindex.pipeline import run_update
+    from coldindex.release import run_update
 
     cfg = load_config(SAMPLE / "coldindex-raw.toml")
     assert cfg.inputs.casts is None and cfg.inputs.ice is None
-    cfg = dataclasses.replace(cfg, index=dataclasses.replace(cfg.index, sims=4, param_draws=2),
-                              shifts=dataclasses.replace(cfg.shifts, boot=99))
+    cfg = cfg.replace(index=dict(sims=4, param_draws=2), shifts=dict(boot=99))
     run = run_update(cfg, tmp_path / "out", None)
     rel = run.release
     made = pd.read_csv(rel / "casts.csv", dtype=str)

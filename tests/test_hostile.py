@@ -949,19 +949,19 @@ def test_symlinked_temporary_never_redirects_the_pointer(release, tmp_path: Path
 def test_lost_pointer_is_recovered_by_scanning(release, tmp_path: Path):
     cfg, out = _copy_out(release, tmp_path)
     (out / "latest").unlink()
-    from coldindex.pipeline import _previous_release
+    from coldindex.io.releases import previous_release
 
-    prev, notes = _previous_release(out, None)
+    prev, notes = previous_release(out, None)
     assert prev == out / "release-1" and "missing" in notes[0]
     (out / "latest").write_text("release-7\n")  # names a release that is not there
-    prev, notes = _previous_release(out, None)
+    prev, notes = previous_release(out, None)
     assert prev == out / "release-1" and "not a complete release" in notes[0]
 
 
 def test_second_update_refused_while_the_first_holds_the_lock(release, tmp_path: Path,
                                                               monkeypatch):
     cfg, out = _copy_out(release, tmp_path)
-    monkeypatch.setattr("coldindex.pipeline.LOCK_WAIT_S", 0.2)
+    monkeypatch.setattr("coldindex.io.releases.LOCK_WAIT_S", 0.2)
     holder = subprocess.Popen(
         [sys.executable, "-c", textwrap.dedent(f"""
             import sys, time
@@ -984,7 +984,7 @@ def test_second_update_refused_while_the_first_holds_the_lock(release, tmp_path:
 KILLER = """
 import os, signal, sys
 from pathlib import Path
-from coldindex import pipeline
+from coldindex import pipeline, release
 from coldindex.config import load_config
 from coldindex.io import writers
 
@@ -1000,7 +1000,7 @@ elif point == "before-pointer":
             os.kill(os.getpid(), signal.SIGKILL)
         return real(data, target)
     writers.write_bytes = write_bytes
-pipeline.run_update(load_config(Path(sys.argv[1])), Path(sys.argv[2]))
+release.run_update(load_config(Path(sys.argv[1])), Path(sys.argv[2]))
 """
 
 
@@ -1012,7 +1012,7 @@ def _kill_at(cfg: Path, out: Path, point: str) -> None:
 
 
 def test_killed_updates_are_recovered(release, tmp_path: Path):
-    from coldindex.pipeline import _previous_release, run_update
+    from coldindex.release import run_update
 
     cfg, out = _copy_out(release, tmp_path)
     _kill_at(cfg, out, "mid-build")

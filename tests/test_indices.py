@@ -178,7 +178,7 @@ def test_coverage_uses_a_fixed_reference_so_denser_years_never_score_lower(box_d
 
 
 def test_revisions_name_the_new_fit_and_coverage_rule_of_an_older_release():
-    from coldindex.pipeline import revisions_table
+    from coldindex.release import revisions_table
 
     prev = pd.DataFrame({"year": [2001], "below_0c_km2": [100.0]})
     cur = pd.DataFrame({"year": [2001], "below_0c_km2": [110.0]})

@@ -11,7 +11,8 @@ from coldindex.cli import app
 from coldindex.config import load_config
 from coldindex.errors import ConfigError, OutputError, StageError
 from coldindex.io.writers import sha256_file
-from coldindex.pipeline import covariates_table, run_update
+from coldindex.covariates import covariates_table
+from coldindex.release import run_update
 from coldindex.schema import CLASSES, EMERGENCE, SHIFTS, SKILL, indices_table
 from tests.conftest import BOX_180, synthetic_casts
 
@@ -164,7 +165,7 @@ def test_failure_leaves_no_release_and_previous_intact(first_release, monkeypatc
     def boom(*args, **kwargs):
         raise RuntimeError("injected failure in the report stage")
 
-    monkeypatch.setattr("coldindex.pipeline._report_page", boom)
+    monkeypatch.setattr("coldindex.report.summary.release_page", boom)
     with pytest.raises(StageError, match="The report stage of the update failed .*injected"):
         run_update(load_config(cfg_path), out)
     assert sorted(p.name for p in out.iterdir()) == before

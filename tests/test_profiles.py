@@ -331,7 +331,7 @@ def test_time_and_position_found_without_standard_names(tmp_path: Path):
 def test_update_takes_casts_or_profiles_not_both(tmp_path: Path):
     from coldindex.config import config_from_mapping
     from coldindex.errors import ConfigError
-    from coldindex.pipeline import run_update
+    from coldindex.release import run_update
     from tests.conftest import SAMPLE
 
     both = config_from_mapping({"inputs": {"casts": "casts.csv", "profiles": "profiles.nc"}},

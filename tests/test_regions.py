@@ -80,7 +80,7 @@ def test_parse_depth_zones():
     assert parse_depth_zones("0-50, 50-100,100-200") == ((0, 50), (50, 100), (100, 200))
     assert parse_depth_zones("") == ()
     for bad in ("0-50,40-100", "50-0", "a-b", "0-50-100"):
-        with pytest.raises(InputError, match="--depth-zones"):
+        with pytest.raises(ValueError, match="index.depth_zones needs"):
             parse_depth_zones(bad)
 
 
@@ -332,14 +332,13 @@ def test_idw_regions_are_map_areas_and_an_empty_region_says_so(box_domain):
 def test_update_checks_regions_and_zones_at_the_door(tmp_path):
     from coldindex.config import config_from_mapping
     from coldindex.errors import ConfigError
-    from coldindex.pipeline import check_update_config, run_update
+    from coldindex.release import run_update
 
     (tmp_path / "casts.csv").write_text("year,lat,lon,bottom_c\n")
     cfg = config_from_mapping({"inputs": {"casts": "casts.csv", "regions": "missing.geojson"}},
                               tmp_path)
     with pytest.raises(ConfigError, match="inputs.regions names"):
         run_update(cfg, tmp_path / "out")
-    cfg = config_from_mapping({"inputs": {"casts": "casts.csv"},
-                               "index": {"depth_zones": "0-50"}}, tmp_path)
     with pytest.raises(ConfigError, match="index.depth_zones needs inputs.bathymetry"):
-        check_update_config(cfg)
+        config_from_mapping({"inputs": {"casts": "casts.csv"},
+                             "index": {"depth_zones": "0-50"}}, tmp_path)

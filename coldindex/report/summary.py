@@ -233,10 +233,9 @@ def release_page(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame, shif
 
 
 def release_figures(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame, shifts: Any,
-                    skill: Any, proj: Any, index: Any) -> dict[str, Any]:
-    """The release's figures by name: series, maps, anomalies, and the stages' own."""
+                    index: Any, coast: Any = None) -> dict[str, Any]:
+    """The release's own figures by name: series, maps and anomalies (``coast``: lines)."""
     from coldindex.config import parse_reference
-    from coldindex.io.readers import read_coastline
     from coldindex.report import figures as fg
     from coldindex.report.page import column_label
 
@@ -249,7 +248,7 @@ def release_figures(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame, s
         pairs.append((area_col, column_label(area_col)))
     regimes = shifts.files["regimes.csv"] if shifts is not None else None
     figs["series"] = fg.series_figure(indices, pairs, classes, regimes, reference=ref_years)
-    ok_years = [y for y, note in zip(res.years, indices["note"].fillna(""), strict=True)
+    ok_years = [y for y, note in zip(res.years, indices["note"].astype(object).fillna(""), strict=True)
                 if not str(note).startswith("no indices")]
     idx = [res.years.index(y) for y in ok_years]
     outline = [np.asarray(r.coords) for p in getattr(domain.polygon_xy, "geoms",
@@ -257,7 +256,6 @@ def release_figures(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame, s
                for r in [p.exterior]]
     cast_xy = [res.casts.loc[res.casts["year"] == y, ["x_km", "y_km"]].to_numpy()
                for y in ok_years]
-    coast = read_coastline(cfg.inputs.coastline, domain) if cfg.inputs.coastline else None
     contour = cfg.index.thresholds[0]
     maps = grid.to_2d(res.estimate[idx])
     figs["maps"] = fg.maps_figure(ok_years, maps, grid.x, grid.y, outline, cast_xy, contour,
