@@ -57,7 +57,7 @@ from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
 from coldindex.errors import TooFewDataError
-from coldindex.interpolate import Variogram, correlation_inplace, drift_matrix
+from coldindex.interpolate import FAMILIES, Variogram, correlation_inplace, drift_matrix
 
 FloatArray = NDArray[np.float64]
 
@@ -104,7 +104,7 @@ class Fit:
     variogram
         The point estimate.
     method
-        Fit method (a key of :data:`FIT_METHODS`).
+        Fit method (a key of :data:`FIT_METHODS`, or ``fixed`` for given parameters).
     at_bound
         Human-readable notes for parameters that ended at an artificial bound.
     neg2loglik
@@ -464,9 +464,36 @@ FitFunction = Callable[..., Fit]
 FIT_METHODS: dict[str, FitFunction] = {"reml": fit_reml, "ml": fit_ml, "wls": fit_wls}
 
 
+def fixed_fit(family: str, variogram: Variogram) -> Fit:
+    """A given variogram in place of a fit (method ``fixed``): no estimation, no posterior.
+
+    For benchmarks and sensitivity runs that hold the parameters of every year fixed.
+
+    Parameters
+    ----------
+    family
+        Correlation family the run uses (it replaces ``variogram.family``).
+    variogram
+        Partial sill [°C²], length scale [km] and nugget [°C²].
+
+    Returns
+    -------
+    Fit
+        ``method="fixed"``; the simulations use these parameters for every draw.
+    """
+    if family not in FAMILIES:
+        raise ValueError(f"family needs to be one of {', '.join(FAMILIES)}, got: {family!r}")
+    if not (variogram.sill > 0 and variogram.len_scale > 0 and variogram.nugget >= 0):
+        raise ValueError("a fixed variogram needs sill > 0, len_scale > 0 and nugget >= 0, "
+                         f"got: {variogram.describe()}")
+    return Fit(variogram=Variogram(family=family, sill=variogram.sill,
+                                   len_scale=variogram.len_scale, nugget=variogram.nugget),
+               method="fixed")
+
+
 def fit_variogram(xy: ArrayLike, values: ArrayLike, family: str,
                   drift: ArrayLike | None = None, method: str = "reml",
-                  posterior: bool = False) -> Fit:
+                  posterior: bool = False, fixed: Variogram | None = None) -> Fit:
     """Fit a variogram by a registered method (see :data:`FIT_METHODS`).
 
     Parameters
@@ -483,12 +510,16 @@ def fit_variogram(xy: ArrayLike, values: ArrayLike, family: str,
         ``reml`` (default), ``ml`` or ``wls``.
     posterior
         Tabulate the parameter posterior (likelihood methods).
+    fixed
+        Given parameters: no fit at all (:func:`fixed_fit`, ``method`` is then ignored).
 
     Returns
     -------
     Fit
         The fit.
     """
+    if fixed is not None:
+        return fixed_fit(family, fixed)
     if method not in FIT_METHODS:
         raise ValueError(f"method needs to be one of {', '.join(FIT_METHODS)}, got: {method!r}")
     return FIT_METHODS[method](xy, values, family, drift, posterior=posterior)

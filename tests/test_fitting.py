@@ -10,13 +10,12 @@ from scipy.linalg import null_space
 from scipy.spatial.distance import cdist
 from scipy.stats import multivariate_normal
 
-from coldindex.config import FIT_CHOICES
 from coldindex.fitting import (
-    FIT_METHODS,
     _Profile,
     draw_variograms,
     fit_variogram,
     fit_wls,
+    fixed_fit,
     with_posterior,
 )
 from coldindex.interpolate import Variogram, correlation, drift_matrix
@@ -31,10 +30,6 @@ def field(seed, n=300, extent=500.0, vg=TRUTH, drift_coef=0.0):
     depth = 100 + 0.3 * xy[:, 0]
     z = 2.0 + drift_coef * depth + np.linalg.cholesky(K) @ rng.standard_normal(n)
     return xy, z, depth
-
-
-def test_registry_and_config_agree():
-    assert tuple(FIT_METHODS) == FIT_CHOICES
 
 
 def test_restricted_likelihood_equals_the_density_of_error_contrasts():
@@ -160,3 +155,51 @@ def test_posterior_draws_spread_around_the_fit_and_are_reproducible(reml_fits):
     # A least-squares fit has no posterior: the point estimate is repeated.
     w = fit_wls(xy, z, "exponential")
     assert draw_variograms(w, 3, np.random.default_rng(1)) == [w.variogram] * 3
+
+
+@pytest.mark.parametrize("family", ["exponential", "spherical", "matern", "gaussian"])
+@pytest.mark.parametrize("restricted", [True, False])
+def test_likelihood_evaluation_equals_a_direct_dense_evaluation(family, restricted):
+    # The LAPACK evaluation (one factor, one stacked triangular solve, a reused buffer)
+    # against the textbook formula with dense solves and log-determinants, to 1e-10.
+    xy, z, depth = field(4, n=80, drift_coef=0.01)
+    F = drift_matrix(80, depth)
+    prof = _Profile(xy, z, F, family, restricted=restricted)
+    D = cdist(xy, xy)
+    n, p = F.shape
+    dof = n - p if restricted else n
+    for len_scale, share in ((30.0, 0.95), (150.0, 0.4), (60.0, 0.0)):
+        V = share * correlation(family, D / len_scale) + (1 - share + 1e-8) * np.eye(n)
+        Vi_F, Vi_z = np.linalg.solve(V, F), np.linalg.solve(V, z)
+        G = F.T @ Vi_F
+        beta = np.linalg.solve(G, F.T @ Vi_z)
+        r = z - F @ beta
+        q = r @ np.linalg.solve(V, r)
+        ref = dof * np.log(q / dof) + np.linalg.slogdet(V)[1]
+        if restricted:
+            ref += np.linalg.slogdet(G)[1]
+        for _ in range(2):  # the second call reuses the buffer of the first
+            f, s = prof.evaluate(len_scale, share)
+            assert f == pytest.approx(ref, abs=1e-10, rel=1e-12)
+            assert s == pytest.approx(q / dof, rel=1e-10)
+
+
+def test_a_matrix_that_is_not_positive_definite_is_infinite_not_an_error():
+    xy = np.array([[0.0, 0.0], [0.0, 0.0], [10.0, 0.0], [0.0, 10.0], [7.0, 7.0]])
+    prof = _Profile(xy, np.array([1.0, 2.0, 0.5, 0.1, 0.3]), drift_matrix(5, None),
+                    "gaussian", restricted=True)
+    # Two casts at one place correlated 1.5 with a variance of 1: not a covariance matrix.
+    f, s = prof.evaluate(50.0, 1.5)
+    assert f == float("inf") and np.isnan(s)
+
+
+def test_fixed_fit_is_given_not_estimated():
+    xy, z, _ = field(5, n=40)
+    vg = Variogram("exponential", 0.7, 90.0, 0.02)
+    fit = fit_variogram(xy, z, "spherical", fixed=vg)
+    assert fit.method == "fixed" and fit.posterior is None
+    assert fit.variogram == Variogram("spherical", 0.7, 90.0, 0.02)
+    assert draw_variograms(fit, 3, np.random.default_rng(0)) == [fit.variogram] * 3
+    assert with_posterior(fit, xy, z) is fit
+    with pytest.raises(ValueError, match="sill > 0"):
+        fixed_fit("exponential", Variogram("exponential", 0.0, 90.0, 0.02))

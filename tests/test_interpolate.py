@@ -6,6 +6,8 @@ from coldindex.interpolate import (
     Kriging,
     Variogram,
     correlation,
+    covariance_blocked,
+    drift_matrix,
     idw_loo,
     idw_predict,
 )
@@ -149,3 +151,48 @@ def test_idw_exact_and_loo(stations):
     i = 5
     keep = np.arange(len(z)) != i
     assert err[i] == pytest.approx(z[i] - idw_predict(xy[keep], z[keep], xy[i:i + 1])[0])
+
+
+@pytest.mark.parametrize("family", FAMILIES)
+def test_blocked_covariance_equals_the_plain_formula(family):
+    # Block edges fall inside rows and between them (33 columns, 32768-element blocks).
+    rng = np.random.default_rng(2)
+    d = rng.uniform(0, 400, (2500, 33))
+    ref = 0.7 * correlation(family, d / 85.0)
+    np.testing.assert_allclose(covariance_blocked(family, d, 85.0, 0.7), ref, rtol=1e-14,
+                               atol=1e-15)
+    out = d.copy()
+    covariance_blocked(family, out, 85.0, 0.7, out=out)  # in place, as the kriging does
+    np.testing.assert_allclose(out, ref, rtol=1e-14, atol=1e-15)
+    np.testing.assert_allclose(Variogram(family, 0.7, 85.0, 0.1).covariance(d[:5, 0]),
+                               ref[:5, 0], rtol=1e-14, atol=1e-15)
+
+
+@pytest.mark.parametrize("drift", [None, "depth"])
+@pytest.mark.parametrize("filtered", [True, False])
+def test_variance_by_triangular_solve_equals_the_lagrange_system(stations, drift, filtered):
+    # The variance from v = L^-1 c equals the one from solving the full (n + p) Lagrange
+    # system of Isaaks & Srivastava (1989, eq. 12.14, with a drift) densely, to 1e-10.
+    xy, z, targets = stations
+    d = xy[:, 0] * 0.3 + 5 if drift else None
+    d0 = targets[:, 0] * 0.3 + 5 if drift else None
+    vg = Variogram("spherical", 0.8, 90.0, 0.05)
+    est, var, W = Kriging(xy, z, vg, d).predict(targets, d0, filter_nugget=filtered,
+                                                 return_weights=True)
+    n = len(z)
+    F = drift_matrix(n, d)
+    f0 = drift_matrix(len(targets), d0)
+    p = F.shape[1]
+    from scipy.spatial.distance import cdist
+
+    K = vg.covariance(cdist(xy, xy)) + (vg.nugget + 1e-10 * 0.85) * np.eye(n)
+    A = np.block([[K, F], [F.T, np.zeros((p, p))]])
+    c = vg.covariance(cdist(targets, xy))
+    if not filtered:
+        c = c + vg.nugget * (cdist(targets, xy) == 0)
+    sol = np.linalg.solve(A, np.vstack([c.T, f0.T]))  # weights and multipliers
+    c00 = vg.sill + (0.0 if filtered else vg.nugget)
+    ref_var = c00 - np.einsum("ij,ij->j", sol, np.vstack([c.T, f0.T]))
+    np.testing.assert_allclose(var, np.maximum(ref_var, 0.0), atol=1e-10)
+    np.testing.assert_allclose(W, sol[:n].T, atol=1e-10)
+    np.testing.assert_allclose(est, sol[:n].T @ z, atol=1e-10)
