@@ -191,7 +191,27 @@ def vecchia_neighbours(xy: FloatArray, m: int = VECCHIA_NEIGHBOURS) -> IntArray:
     return nbr
 
 
-def vecchia_whitener(xy: FloatArray, variogram: Variogram, nbr: IntArray
+def vecchia_distances(xy: FloatArray, nbr: IntArray) -> tuple[FloatArray, FloatArray]:
+    """Distances among each cast's conditioning casts (n, m, m) and to the cast (n, m). [km]
+
+    Missing conditioning casts (``-1``) get distance 0; :func:`vecchia_whitener`
+    makes them inert.
+    """
+    n, m = nbr.shape
+    dNN = np.empty((n, m, m))
+    d0 = np.empty((n, m))
+    for start in range(0, n, 4096):
+        sl = slice(start, min(start + 4096, n))
+        nb = nbr[sl]
+        P = xy[np.where(nb >= 0, nb, 0)]  # (t, m, 2)
+        px, py = np.ascontiguousarray(P[:, :, 0]), np.ascontiguousarray(P[:, :, 1])
+        dNN[sl] = np.hypot(px[:, :, None] - px[:, None, :], py[:, :, None] - py[:, None, :])
+        d0[sl] = np.hypot(px - xy[sl, :1], py - xy[sl, 1:])
+    return dNN, d0
+
+
+def vecchia_whitener(xy: FloatArray, variogram: Variogram, nbr: IntArray,
+                     dist: tuple[FloatArray, FloatArray] | None = None
                      ) -> tuple[IntArray, FloatArray, FloatArray]:
     """Sparse inverse Cholesky factor of the data covariance by Vecchia's approximation.
 
@@ -224,23 +244,23 @@ def vecchia_whitener(xy: FloatArray, variogram: Variogram, nbr: IntArray
     process approximations. Technometrics 60, 415-429.
     """
     n, m = nbr.shape
+    dNN, d0 = vecchia_distances(xy, nbr) if dist is None else dist
     c0 = variogram.sill + variogram.nugget
     jitter = 1e-10 * c0
     b = np.zeros((n, m))
     sd = np.full(n, np.sqrt(c0 + jitter))
+    eye = np.eye(m, dtype=bool)
     for start in range(0, n, 4096):
         sl = slice(start, min(start + 4096, n))
-        nb = nbr[sl]
-        ok = nb >= 0
-        P = xy[np.where(ok, nb, 0)]  # (t, m, 2)
-        dNN = np.hypot(P[:, :, None, 0] - P[:, None, :, 0], P[:, :, None, 1] - P[:, None, :, 1])
-        K = variogram.covariance(dNN)
-        K += (variogram.nugget + jitter) * np.eye(m)[None]
-        both = ok[:, :, None] & ok[:, None, :]
-        K = np.where(both, K, np.eye(m)[None] * c0)  # missing conditioning casts: inert
-        k0 = variogram.covariance(np.hypot(P[:, :, 0] - xy[sl][:, None, 0],
-                                           P[:, :, 1] - xy[sl][:, None, 1]))
-        k0 = np.where(ok, k0, 0.0)
+        ok = nbr[sl] >= 0
+        K = variogram.covariance(dNN[sl])
+        K[:, eye] += variogram.nugget + jitter
+        k0 = variogram.covariance(d0[sl])
+        short = np.flatnonzero(~ok.all(axis=1))
+        if len(short):  # missing conditioning casts: identity rows, no covariance
+            both = ok[short, :, None] & ok[short, None, :]
+            K[short] = np.where(both, K[short], eye[None] * c0)
+            k0[short] = np.where(ok[short], k0[short], 0.0)
         bb = np.linalg.solve(K, k0[:, :, None])[:, :, 0]
         b[sl] = bb
         sd[sl] = np.sqrt(np.maximum(c0 + jitter - np.einsum("ij,ij->i", bb, k0), jitter))
@@ -279,6 +299,7 @@ class Geometry:
         # Tiles holding about half a neighbourhood of casts each.
         self.tile_km = float(np.sqrt(span[0] * span[1] * 0.5 * self.k / n))
         self.vecchia = vecchia_neighbours(xy)
+        self.vecchia_dist = vecchia_distances(xy, self.vecchia)
         self._tilings: dict[tuple[tuple[int, ...], bytes], list[tuple[IntArray, IntArray]]] = {}
 
     def neighbourhood(self, targets: FloatArray) -> IntArray:
@@ -343,7 +364,8 @@ class LocalKriging:
         self.tile_km = self.geometry.tile_km
         self.sub = stratified_subsample(self.xy, subsample)
         # Drift coefficients: generalised least squares over all casts, Vecchia-whitened.
-        self._white = vecchia_whitener(self.xy, variogram, self.geometry.vecchia)
+        self._white = vecchia_whitener(self.xy, variogram, self.geometry.vecchia,
+                                       self.geometry.vecchia_dist)
         WF = _whiten(self._white, self.F)
         self.G = WF.T @ WF  # F^T K^-1 F, approximately
         self._WF = WF
