@@ -10,6 +10,7 @@ from coldindex.interpolate import (
     Kriging,
     Variogram,
     _cast_stencils,
+    _even_spectrum,
     circulant_embedding,
     conditional_realizations,
     refinement,
@@ -212,3 +213,16 @@ def test_weighted_summaries_equal_plain_sums():
             [[np.sum(wr[v < t]) for wr in w] for v in values]), rtol=1e-12)
     np.testing.assert_allclose(means[:, :2], values @ w[:2].T / w[:2].sum(axis=1), rtol=1e-12)
     assert np.isnan(means[:, 2]).all()
+
+
+@pytest.mark.parametrize("shape", [(8, 10), (9, 11), (60, 81)])
+def test_embedding_spectrum_equals_the_complex_fft(shape):
+    # Half a real FFT and its mirror equal the real part of the full complex FFT.
+    import scipy.fft
+
+    my, mx = shape
+    ky = np.minimum(np.arange(my), my - np.arange(my)) * CELL
+    kx = np.minimum(np.arange(mx), mx - np.arange(mx)) * CELL
+    c = Variogram("matern", 1.0, 30.0, 0.0).covariance(np.hypot(ky[:, None], kx[None, :]))
+    ref = scipy.fft.fft2(c).real
+    np.testing.assert_allclose(_even_spectrum(c), ref, atol=1e-13 * np.abs(ref).max())
