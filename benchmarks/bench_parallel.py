@@ -7,9 +7,9 @@ code, the same for ``--workers 1``), so the speed-up is that of the years alone,
 BLAS threads traded for processes. Runs alternate (1, N, 1, N, ...) so a machine that
 gets busier part-way hurts both alike; the table gives the median of each.
 
-Peak memory: the largest sum of the resident sets of the run's process tree (the
-command and its workers), sampled every 0.1 s with psutil; a parallel run holds one
-year's working memory per worker.
+Peak memory: the largest total of the run's process tree (the command, the process
+server and the workers; proportional set sizes, so shared pages count once), sampled
+every 0.1 s with psutil; a parallel run holds one year's working memory per worker.
 
 After the timings, the outputs of the two settings are compared byte for byte
 (``indices.csv``, ``regions.csv`` when written, ``fields.nc``'s data variables).
@@ -43,19 +43,25 @@ def command(out: Path, workers: int) -> list[str]:
             "--no-progress"]
 
 
-def tree_rss(proc: psutil.Process) -> int:
-    """Resident memory of a process and all its descendants. [bytes]"""
+def tree_memory(proc: psutil.Process) -> int:
+    """Memory of a process and all its descendants. [bytes]
+
+    The proportional set size where the system reports it (Linux: a page shared by k
+    processes counts 1/k in each, so the sum is what the tree holds; the workers share
+    the pages of the modules they inherited), else the resident set size.
+    """
     total = 0
     for p in [proc, *proc.children(recursive=True)]:
         try:
-            total += p.memory_info().rss
+            info = p.memory_full_info()
+            total += getattr(info, "pss", info.rss)
         except psutil.Error:  # ended between listing and reading
             pass
     return total
 
 
 def timed_run(out: Path, workers: int) -> tuple[float, int]:
-    """Wall time [s] and peak tree RSS [bytes] of one whole-process run."""
+    """Wall time [s] and peak memory of the process tree [bytes] of one whole-process run."""
     t0 = time.perf_counter()
     proc = subprocess.Popen(command(out, workers), stdout=subprocess.DEVNULL,
                             stderr=subprocess.PIPE, text=True)
@@ -63,7 +69,7 @@ def timed_run(out: Path, workers: int) -> tuple[float, int]:
     peak = 0
     while proc.poll() is None:
         try:
-            peak = max(peak, tree_rss(ps))
+            peak = max(peak, tree_memory(ps))
         except psutil.Error:
             pass
         time.sleep(0.1)
