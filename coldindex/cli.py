@@ -254,8 +254,9 @@ def check(
                                           max_gap_m, average_m)
     from rich.table import Table
 
-    from coldindex.io.writers import plan_outputs, write_csv
+    from coldindex.io.writers import plan_outputs, write_table
     from coldindex.pipeline import PROFILE_CASTS_NAME, run_check
+    from coldindex.schema import CASTS_FROM_PROFILES
 
     names = ("qc.csv",) + ((PROFILE_CASTS_NAME,) if popts else ())
     outputs = plan_outputs(out, "check", names, (source, domain, bathymetry)) if out else None
@@ -292,9 +293,9 @@ def check(
             out_console.print(f"... {len(flagged) - show} more; write them all with --out.")
     if outputs is not None:
         with outputs as o:
-            write_csv(qc.table.drop(columns=["doy"]), o.path("qc.csv"))
+            write_table(qc.table, o.path("qc.csv"))
             if run.profile_casts is not None:
-                write_csv(run.profile_casts, o.path(PROFILE_CASTS_NAME))
+                write_table(run.profile_casts, o.path(PROFILE_CASTS_NAME), CASTS_FROM_PROFILES)
         _wrote(outputs.written)
     if (counts["ok"] >= min_casts).sum() == 0:
         _error(f"no year of {source} has {min_casts} usable casts; fix the flagged rows (see "

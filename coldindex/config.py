@@ -126,9 +126,11 @@ def parse_months(text: str, key: str = "skill.months") -> list[int]:
 
 def parse_lags(text: str, key: str = "skill.lags") -> list[int]:
     """Lags ``A-B`` or ``0,1,3`` in whole years, sorted, spanning at most MAX_LAG_SPAN."""
-    lags = sorted(parse_span(text, key, "whole years", 0, 5 * MAX_LAG_SPAN))
+    lags = sorted(parse_span(text, key, "whole years", 0, 10**4))
     _need(lags[-1] - lags[0] <= MAX_LAG_SPAN, key,
           f"lags spanning at most {MAX_LAG_SPAN} years (the cap on lags)", text)
+    _need(lags[-1] <= 5 * MAX_LAG_SPAN, key, f"lags of at most {5 * MAX_LAG_SPAN} years",
+          text)
     return lags
 
 
@@ -323,8 +325,9 @@ class IndexOptions(_Table):
     @model_validator(mode="after")
     def _valid(self) -> IndexOptions:
         t = self.thresholds
-        _need(0 < len(t) <= MAX_THRESHOLDS, "thresholds",
-              f"1 to {MAX_THRESHOLDS} thresholds (the cap on list lengths)", list(t))
+        _need(len(t) > 0, "thresholds", "at least one threshold", list(t))
+        _need(len(t) <= MAX_THRESHOLDS, "thresholds",
+              f"at most {MAX_THRESHOLDS} thresholds (the cap on list lengths)", len(t))
         _need(all(-5.0 <= v <= 40.0 for v in t), "thresholds",
               "finite temperatures in -5..40 °C", list(t))
         _need(len(set(t)) == len(t), "thresholds", "distinct values", list(t))
@@ -768,7 +771,9 @@ def _sentence(exc: ValidationError, cls: type[_Table], table: str, flag: bool) -
         inner = "names" if "str" in str(field.annotation) else "numbers"
         words = f"a list of {inner}"
     elif len(loc) > 1:
-        words = f"a list of {'names' if err['type'] == 'string_type' else 'numbers'}"
+        words = ("a list of names" if err["type"] == "string_type" else
+                 "a list of finite numbers" if err["type"] == "finite_number"
+                 else "a list of numbers")
     return ConfigError(f"{name} needs to be {words}, got: {err['input']!r}.")
 
 

@@ -42,6 +42,7 @@ from coldindex.io import readers, writers
 from coldindex.progress import ProgressEvent
 from coldindex.qc import QCResult, run_qc, year_hashes
 from coldindex.regions import RegionWeights
+from coldindex.schema import CASTS_FROM_PROFILES, HINDCAST
 
 FROZEN_NAME = "frozen.json"
 DOMAIN_NAME = "domain.geojson"
@@ -186,19 +187,18 @@ def _write_index_outputs(out: Path, check: CheckRun, result: IndexResult, grid: 
                                        if np.isfinite(result.reference_spacing_km) else None),
               "reference_day": result.reference_day}
     written = [
-        writers.write_csv(mark_spatial_outliers(check.qc.table, result.outliers,
-                                                options.outlier_z).drop(columns=["doy"]).reindex(
-            columns=["row", "year", "station", "lat", "lon", "bottom_c", "flag", "detail"]),
-            out / "qc.csv"),
-        writers.write_csv(result.table, out / "indices.csv"),
+        writers.write_table(mark_spatial_outliers(check.qc.table, result.outliers,
+                                                  options.outlier_z), out / "qc.csv"),
+        writers.write_table(result.table, out / "indices.csv"),
         writers.write_netcdf(fields, out / "fields.nc"),
         writers.write_json(check.domain.to_geojson(), out / DOMAIN_NAME),
         writers.write_json(frozen, out / FROZEN_NAME),
     ]
     if check.profile_casts is not None:  # the casts made from profiles, with provenance
-        written.append(writers.write_csv(check.profile_casts, out / PROFILE_CASTS_NAME))
+        written.append(writers.write_table(check.profile_casts, out / PROFILE_CASTS_NAME,
+                                           CASTS_FROM_PROFILES))
     if result.regions is not None:
-        written.append(writers.write_csv(result.regions, out / REGIONS_NAME))
+        written.append(writers.write_table(result.regions, out / REGIONS_NAME))
     return written, frozen
 
 
@@ -486,7 +486,7 @@ def run_skill(ice_path: Path, target_path: Path, column: str, options: SkillConf
         options.outlook_q_max)
     return StageRun(
         {"skill.csv": table,
-         "hindcast.csv": hc.table[["year", "observed", "predicted", "persistence"]],
+         "hindcast.csv": hc.table[list(HINDCAST.names)],
          "outlook.json": ol},
         {"skill": skill_figure(table), "hindcast": hindcast_figure(hc.table, ol, column)},
         result=(table, hc, ol, survey))

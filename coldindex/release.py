@@ -329,7 +329,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
         write(run, **{"cuts.json": f"cuts/{col}.json"})
     classes = pd.concat(class_frames, ignore_index=True)
     classes = classes[["column", *[x for x in classes.columns if x != "column"]]]
-    written.append(writers.write_csv(classes, rel / "classes.csv"))
+    written.append(writers.write_table(classes, rel / "classes.csv"))
 
     sc = cfg.shifts
     shifts = attempt("shifts", lambda: pl.run_shifts(table, sc.column, sc))
@@ -370,7 +370,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
                                                   cfg.covariates.columns)
     cov = covariates_table(cov_source, cov_columns, cfg.covariates.lags,
                            cfg.covariates.period)
-    written.append(writers.write_csv(with_class_probabilities(cov, classes),
+    written.append(writers.write_table(with_class_probabilities(cov, classes),
                                      rel / "covariates.csv"))
 
     progress("revisions")
@@ -395,7 +395,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
         if len(withdrawn):
             revisions = pd.concat([revisions.astype(withdrawn.dtypes.to_dict()), withdrawn],
                                   ignore_index=True)
-    written.append(writers.write_csv(revisions, rel / "revisions.csv"))
+    written.append(writers.write_table(revisions, rel / "revisions.csv"))
 
     progress("figures")
     coast = (readers.read_coastline(cfg.inputs.coastline, index.domain)

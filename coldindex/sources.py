@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import datetime as dt
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -153,7 +153,7 @@ def ice_table(paths: Sequence[Path], regions: Mapping[str, Domain],
         "regions": {w.name: {"area_km2": round(w.area_km2, 3),
                              "region_polygon_km2": round(regions[w.name].area_km2, 3)}
                     for w in weights},
-        "options": asdict(options),
+        "options": options.model_dump(mode="json"),
         "thickness": (None if not any(has_thickness) else
                       "floe thickness (times concentration)" if floe == {True}
                       else "mean over the cell (not times concentration)"),
@@ -177,7 +177,7 @@ def run_ice(paths: Sequence[Path], regions_path: Path, out: Path,
                                   "sha256": writers.sha256_file(regions_path)}
     res.record["created_utc"] = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     with outputs as stage:
-        writers.write_csv(res.table, stage.path("ice_fields.csv"))
+        writers.write_table(res.table, stage.path("ice_fields.csv"))
         writers.write_json(res.record, stage.path("ice_fields.json"))
     res.written = stage.written
     return res
@@ -210,7 +210,7 @@ def release_ice_series(cfg: Config, domain: Domain, rel: Path) -> tuple[pd.DataF
     res = ice_table(cfg.inputs.ice_fields, regions, cfg.ice_fields)
     base = cfg.source.parent if cfg.source else Path(".")
     res.record["inputs"] = {_relative(Path(k), base): v for k, v in res.record["inputs"].items()}
-    written = [writers.write_csv(res.table, rel / "ice_fields.csv"),
+    written = [writers.write_table(res.table, rel / "ice_fields.csv"),
                writers.write_json(res.record, rel / "ice_fields.json")]
     return series_for_skill(res.table, cfg.ice_fields.quantity, cfg.ice_fields.region), written
 

@@ -1024,7 +1024,9 @@ def test_killed_updates_are_recovered(release, tmp_path: Path):
     _kill_at(cfg, out, "before-pointer")
     assert (out / "release-3" / "provenance.json").is_file()
     assert (out / "latest").read_text() == "release-2\n"
-    prev, notes = _previous_release(out, None)  # what the next run compares with
+    from coldindex.io.releases import previous_release
+
+    prev, notes = previous_release(out, None)  # what the next run compares with
     assert prev == out / "release-3"
     assert "release-3 is newer and complete" in notes[0]
 

@@ -130,11 +130,14 @@ def test_decimal_comma_given_explicitly_and_point_refused(tmp_path: Path):
     dot = tmp_path / "dot.csv"
     dot.write_text("year;lat;lon;bottom_c\n2019;60.5;179.5;1.5\n")
     with pytest.raises(InputError, match=r"row 2: column 'lat' holds '60.5' with a decimal "
-                                         r"point, but --decimal says"):
-        read_casts(dot, decimal=",", option_names={"decimal": "--decimal"})
+                                         r"point, but read.decimal says") as exc:
+        read_casts(dot, decimal=",")
+    from coldindex.config import flag_naming  # the same error on a command names the flag
+
+    assert "but --decimal says" in exc.value.render(flag_naming)
     # "." leaves commas alone: quality control then flags them, as it flags any non-number
     assert read_casts(p, decimal=".")["lat"].iloc[0] == "60,52"
-    with pytest.raises(ConfigError, match="decimal needs to be"):
+    with pytest.raises(ConfigError, match="read.decimal needs to be"):
         read_casts(p, decimal=";")
 
 
@@ -226,12 +229,14 @@ def test_month_first_detected(tmp_path: Path):
 def test_ambiguous_dates_refused_with_one_sentence(tmp_path: Path):
     p = _dated(tmp_path, ["05.06.2019", "06.06.2019", "2019-06-07"])
     with pytest.raises(InputError) as exc:
-        read_casts(p, option_names={"date_format": "--date-format"})
-    msg = str(exc.value)
+        read_casts(p)
+    from coldindex.config import flag_naming
+
+    msg = exc.value.render(flag_naming)
     assert msg.startswith(f"{p}: every date in column 'date' (e.g. '05.06.2019', row 2)")
     assert "give the date format (--date-format, e.g. %d.%m.%Y" in msg
     assert msg.endswith(".") and msg.replace("e.g. ", "").count(". ") == 0  # one sentence
-    with pytest.raises(InputError, match=r"date format \(date_format, e.g."):
+    with pytest.raises(InputError, match=r"date format \(read.date_format, e.g."):
         read_casts(p)  # the default spelling, the config key
 
 

@@ -223,7 +223,7 @@ def test_index_cli_writes_regions_and_marks_outliers(tmp_path):
     assert len(reg) == 2 * 5 and "below_0c_km2_lo90" in reg
     qc = pd.read_csv(out / "qc.csv")
     hit = qc[qc["flag"] == "spatial_outlier"]
-    assert hit["row"].tolist() == [41] and "z = +" in hit["detail"].iloc[0]
+    assert hit["row"].tolist() == [42] and "z = +" in hit["detail"].iloc[0]
     prov = json.loads((out / "provenance.json").read_text())
     assert "regions" in prov["inputs"] and "regions.csv" in prov["outputs"]
 
@@ -263,7 +263,7 @@ def test_check_lists_the_planted_spatial_outlier(tmp_path):
     assert r.exit_code == 0, r.output
     assert "spatial_outlier" in r.output
     qc = pd.read_csv(tmp_path / "qc" / "qc.csv")
-    assert qc.loc[qc["flag"] == "spatial_outlier", "row"].tolist() == [41]
+    assert qc.loc[qc["flag"] == "spatial_outlier", "row"].tolist() == [42]
     r = CliRunner().invoke(app, ["check", str(casts), "--min-casts", "20", "--outlier-z", "0"])
     assert r.exit_code == 0 and "spatial_outlier" not in r.output
 

@@ -136,14 +136,8 @@ def written(tmp_path_factory) -> tuple[Path, dict[str, str]]:
     return d, failed
 
 
-# cli.py writes check's qc.csv with write_csv and the whole QC frame (date, depth_m,
-# salinity, surface_c beside the declared columns); writing it with write_table fixes it.
-CHECK_QC_UNFILTERED = pytest.mark.xfail(strict=True, reason="cli.py check writes qc.csv "
-                                        "without the schema (write_table)")
-
-
 @pytest.mark.parametrize("output", [
-    pytest.param("out_check/qc.csv", marks=CHECK_QC_UNFILTERED),
+    "out_check/qc.csv",
     "out_profiles/casts.csv", "out_index/qc.csv", "out_index/indices.csv",
     "out_index/regions.csv", "out_classify/classes.csv", "out_shifts/shifts.csv",
     "out_shifts/regimes.csv", "out_skill/skill.csv", "out_skill/hindcast.csv",

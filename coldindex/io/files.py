@@ -56,6 +56,8 @@ def check_input_files(files: Mapping[str, Path]) -> None:
         Inputs by the name a user knows them by (a config key or a flag).
     """
     for key, p in files.items():
+        if p.is_dir():
+            raise ConfigError(f"{key} names {p}, which is a folder; give the file.")
         if not p.is_file():
             raise ConfigError(f"{key} names {p}, which does not exist or is not a file; fix the "
                               "path (relative to the config file) or comment the line out.")
@@ -63,8 +65,8 @@ def check_input_files(files: Mapping[str, Path]) -> None:
     for key, p in files.items():
         for other_key, q in seen:
             if same_file(p, q):
-                raise ConfigError(f"{key} and {other_key} name the same file ({p}); give each "
-                                  "input once.")
+                raise ConfigError(f"{key} and {other_key} name the same file ({p}), given "
+                                  "twice; give each input once.")
         seen.append((key, p))
 
 

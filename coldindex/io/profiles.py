@@ -62,8 +62,7 @@ class ProfileData:
 
 
 def read_profiles(path: Path, mapping: Mapping[str, str] | None = None, *,
-                  decimal: str | None = None, date_format: str | None = None,
-                  option_names: Mapping[str, str] | None = None) -> ProfileData:
+                  decimal: str | None = None, date_format: str | None = None) -> ProfileData:
     """Read a profiles file: NetCDF (by suffix) or a CSV/Parquet long table.
 
     Parameters
@@ -72,9 +71,9 @@ def read_profiles(path: Path, mapping: Mapping[str, str] | None = None, *,
         The file.
     mapping
         Header mapping ``{ours: theirs}`` of a long table (``--profile-columns``).
-    decimal, date_format, option_names
-        For a long table: the decimal mark and date format (None detects them) and how
-        messages spell those options, as in :func:`coldindex.io.readers.read_table`.
+    decimal, date_format
+        For a long table: the decimal mark and date format (None detects them), as in
+        :func:`coldindex.io.readers.read_table`.
 
     Returns
     -------
@@ -84,24 +83,17 @@ def read_profiles(path: Path, mapping: Mapping[str, str] | None = None, *,
     _check_file(path)
     if path.suffix.lower() in NETCDF_SUFFIXES:
         return _read_dsg(path)
-    return _read_long_table(path, mapping or {}, decimal=decimal, date_format=date_format,
-                            option_names=option_names)
+    return _read_long_table(path, mapping or {}, decimal=decimal, date_format=date_format)
 
 
 # --------------------------------------------------------------------------------------
 # Long tables
 # --------------------------------------------------------------------------------------
 
-def _date_option(option_names: Mapping[str, str] | None) -> str:
-    """How messages spell the date-format option."""
-    return (option_names or {}).get("date_format", DATE_FORMAT_OPTION)
-
-
 def _read_long_table(path: Path, mapping: Mapping[str, str], *, decimal: str | None,
-                     date_format: str | None,
-                     option_names: Mapping[str, str] | None) -> ProfileData:
+                     date_format: str | None) -> ProfileData:
     raw = read_table(path, PROFILES, mapping, "--profile-columns", decimal=decimal,
-                     date_format=date_format, option_names=option_names)
+                     date_format=date_format)
     has_depth, has_p = "depth_m" in raw.columns, "pressure_dbar" in raw.columns
     if not (has_depth or has_p):
         raise InputError(f"{path} has neither a depth_m nor a pressure_dbar column; map one "
@@ -122,7 +114,7 @@ def _read_long_table(path: Path, mapping: Mapping[str, str], *, decimal: str | N
         raise InputError(f"{path}, row {r}: column 'time' holds "
                          f"{raw.loc[when.isna(), 'time'].iloc[0]!r}, not a date or time; "
                          "write ISO 8601 (YYYY-MM-DD or YYYY-MM-DDTHH:MM:SS) or give the "
-                         f"date format ({_date_option(option_names)}).")
+                         "date format ({option}).", option=DATE_FORMAT_OPTION)
     per_cast = pd.DataFrame({"cast": cast, "time": when, "lat": num["lat"], "lon": num["lon"],
                              "row": raw["row"]})
     per_cast["station"] = raw["station"].astype(str).str.strip() if "station" in raw else ""

@@ -15,10 +15,11 @@ carries ``row``, its number as a spreadsheet shows the file (header = row 1).
 from __future__ import annotations
 
 import csv
+import functools
 import io
 import json
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -27,7 +28,7 @@ import pandas as pd
 import xarray as xr
 
 from coldindex.domain import Domain, domain_from_geojson
-from coldindex.errors import ConfigError, InputError, os_error_sentence
+from coldindex.errors import ColdindexError, ConfigError, InputError, os_error_sentence
 from coldindex.schema import CASTS, ICE, TRAJECTORIES, Table
 
 _DELIMITERS = ",;\t|"
@@ -38,10 +39,10 @@ TRAJECTORY_YEARS = (1800, 2500)  # model runs reach 2300 and beyond; 2500 is a g
 MAX_ABS_VALUE = 1e15  # larger magnitudes are corrupt data, not measurements (cap, no source)
 SUMMARY_ROW_NAMES = ("ensemble median", "ensemble", "all", "summary")  # rows we add ourselves
 
-DECIMAL_OPTION = "decimal"
-"""How messages spell the decimal-mark option unless ``option_names`` says otherwise."""
-DATE_FORMAT_OPTION = "date_format"
-"""How messages spell the date-format option unless ``option_names`` says otherwise."""
+DECIMAL_OPTION = ("read", "decimal")
+"""The decimal-mark option: ``read.decimal`` in a config, ``--decimal`` on a command."""
+DATE_FORMAT_OPTION = ("read", "date_format")
+"""The date-format option: ``read.date_format`` in a config, ``--date-format`` on a command."""
 
 FIRST_DATA_ROW = 2
 """Row number of the first data row: rows are numbered as a spreadsheet shows the file,
@@ -255,8 +256,22 @@ def _read_parquet(path: Path) -> pd.DataFrame:
     return out
 
 
-def _option(option_names: Mapping[str, str] | None, key: str, default: str) -> str:
-    return (option_names or {}).get(key, default)
+def _naming(option: tuple[str, str]) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
+    """Errors of the wrapped reader that say ``{option}`` are about ``option``."""
+
+    def decorate(func: Callable[..., Any]) -> Callable[..., Any]:
+        @functools.wraps(func)
+        def wrapper(*args: Any, **kwargs: Any) -> Any:
+            try:
+                return func(*args, **kwargs)
+            except ColdindexError as exc:
+                if exc.option is None and "{option}" in exc.message:
+                    exc.option = option
+                raise
+
+        return wrapper
+
+    return decorate
 
 
 def _first_hit(df: pd.DataFrame, masks: Mapping[str, pd.Series]) -> tuple[int, str, str]:
@@ -266,9 +281,9 @@ def _first_hit(df: pd.DataFrame, masks: Mapping[str, pd.Series]) -> tuple[int, s
     return row, col, str(df.at[row, col])
 
 
+@_naming(DECIMAL_OPTION)
 def decimal_marks(df: pd.DataFrame, columns: Sequence[str], path: object,
-                  sep: str | None = None, decimal: str | None = None,
-                  option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+                  sep: str | None = None, decimal: str | None = None) -> pd.DataFrame:
     """Rewrite numbers written with a decimal comma (``1,5``) with a point (``1.5``).
 
     Parameters
@@ -284,9 +299,6 @@ def decimal_marks(df: pd.DataFrame, columns: Sequence[str], path: object,
     decimal
         ``","`` or ``"."`` as given, or None to detect: numbers are read with a decimal
         comma when some are written ``-?d,d`` and none with a decimal point.
-    option_names
-        How messages spell the options (``{"decimal": "--decimal"}``); default
-        :data:`DECIMAL_OPTION`.
 
     Returns
     -------
@@ -302,7 +314,7 @@ def decimal_marks(df: pd.DataFrame, columns: Sequence[str], path: object,
         is left as it is, for quality control to flag); a decimal point in a file whose
         mark was given as a comma.
     """
-    opt = _option(option_names, "decimal", DECIMAL_OPTION)
+    opt = "{option}"  # named by the caller's context (see _naming)
     if decimal not in (None, ".", ","):
         raise ConfigError(f"{opt} needs to be '.' or ',', got: {decimal!r}.")
     cols = [c for c in columns if c in df.columns]
@@ -348,9 +360,9 @@ def _has_time(fmt: str) -> bool:
     return any(d in fmt for d in _TIME_DIRECTIVES)
 
 
+@_naming(DATE_FORMAT_OPTION)
 def normalise_dates(df: pd.DataFrame, columns: Sequence[str], path: object,
-                    date_format: str | None = None,
-                    option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+                    date_format: str | None = None) -> pd.DataFrame:
     """Rewrite the dates of ``columns`` year first (ISO 8601: ``YYYY-MM-DD[THH:MM:SS]``).
 
     Parameters
@@ -368,9 +380,6 @@ def normalise_dates(df: pd.DataFrame, columns: Sequence[str], path: object,
         ``-``, are read day first when some first field exceeds 12 and month first when
         some second field does. Dot-separated dates are usually day first in Europe, but
         that is detected, not assumed.
-    option_names
-        How messages spell the options (``{"date_format": "--date-format"}``); default
-        :data:`DATE_FORMAT_OPTION`.
 
     Returns
     -------
@@ -384,7 +393,7 @@ def normalise_dates(df: pd.DataFrame, columns: Sequence[str], path: object,
         12 or less (the order cannot be told), both orders present, a two-digit year, or a
         day or month out of range under the order found.
     """
-    opt = _option(option_names, "date_format", DATE_FORMAT_OPTION)
+    opt = "{option}"  # named by the caller's context (see _naming)
     out = df
     for col in (c for c in columns if c in df.columns):
         text = df[col].astype(str).str.strip()
@@ -513,8 +522,7 @@ def map_columns(df: pd.DataFrame, mapping: Mapping[str, str], table: Table, path
 
 def read_table(path: Path, table: Table, mapping: Mapping[str, str] | None = None,
                option: str = "--columns", *, decimal: str | None = None,
-               date_format: str | None = None,
-               option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+               date_format: str | None = None) -> pd.DataFrame:
     """Read a CSV or Parquet table, map headers and check required columns.
 
     Parameters
@@ -533,8 +541,6 @@ def read_table(path: Path, table: Table, mapping: Mapping[str, str] | None = Non
         (:func:`decimal_marks`).
     date_format
         ``strptime`` format of the dates; None detects the order (:func:`normalise_dates`).
-    option_names
-        How messages spell the ``decimal`` and ``date_format`` options.
 
     Returns
     -------
@@ -550,23 +556,22 @@ def read_table(path: Path, table: Table, mapping: Mapping[str, str] | None = Non
     else:
         df, sep = _read_text(path)
     df = map_columns(df, mapping or {}, table, path, option)
-    df = decimal_marks(df, _numeric_names(table), path, sep, decimal, option_names)
-    df = normalise_dates(df, _date_names(table), path, date_format, option_names)
+    df = decimal_marks(df, _numeric_names(table), path, sep, decimal)
+    df = normalise_dates(df, _date_names(table), path, date_format)
     df.insert(0, "row", df.index.to_numpy(dtype=int))
     return df.reset_index(drop=True)
 
 
 def read_casts(path: Path, mapping: Mapping[str, str] | None = None, *,
-               decimal: str | None = None, date_format: str | None = None,
-               option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+               decimal: str | None = None, date_format: str | None = None) -> pd.DataFrame:
     """Read a casts file (see :data:`coldindex.schema.CASTS`).
 
-    ``decimal``, ``date_format`` and ``option_names`` as in :func:`read_table`: numbers
+    ``decimal`` and ``date_format`` as in :func:`read_table`: numbers
     with a decimal comma are read as such, and ``date`` is rewritten as ISO 8601 with the
     day-month order detected (or given).
     """
     return read_table(path, CASTS, mapping, "--columns", decimal=decimal,
-                      date_format=date_format, option_names=option_names)
+                      date_format=date_format)
 
 
 def _numbers(df: pd.DataFrame, col: str) -> pd.Series:
@@ -585,16 +590,14 @@ def _check_months(df: pd.DataFrame, path: object) -> None:
 
 
 def read_ice(path: Path, mapping: Mapping[str, str] | None = None, *,
-             decimal: str | None = None,
-             option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+             decimal: str | None = None) -> pd.DataFrame:
     """Read a monthly ice file (see :data:`coldindex.schema.ICE`).
 
     Years must lie in :data:`OBSERVED_YEARS`, months be whole numbers 1..12, and values
     be of plausible size (finite, ``|x| <=`` :data:`MAX_ABS_VALUE`); the row is named
-    otherwise. ``decimal`` and ``option_names`` as in :func:`read_table`.
+    otherwise. ``decimal`` as in :func:`read_table`.
     """
-    df = read_table(path, ICE, mapping, "--ice-columns", decimal=decimal,
-                    option_names=option_names)
+    df = read_table(path, ICE, mapping, "--ice-columns", decimal=decimal)
     _check_years(_numbers(df, "year"), df["row"], path, "year", OBSERVED_YEARS)
     _check_months(df, path)
     _check_magnitude(_numbers(df, "ice"), df["row"], path, "ice")
@@ -602,17 +605,15 @@ def read_ice(path: Path, mapping: Mapping[str, str] | None = None, *,
 
 
 def read_trajectories(path: Path, mapping: Mapping[str, str] | None = None, *,
-                      decimal: str | None = None,
-                      option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+                      decimal: str | None = None) -> pd.DataFrame:
     """Read a trajectories file (see :data:`coldindex.schema.TRAJECTORIES`).
 
     Years must lie in :data:`TRAJECTORY_YEARS`, values be of plausible size, and
     model and scenario names be non-blank and differ from the summary rows the
-    projection adds (:data:`SUMMARY_ROW_NAMES`). ``decimal`` and ``option_names`` as in
+    projection adds (:data:`SUMMARY_ROW_NAMES`). ``decimal`` as in
     :func:`read_table`.
     """
-    df = read_table(path, TRAJECTORIES, mapping, "--trajectory-columns", decimal=decimal,
-                    option_names=option_names)
+    df = read_table(path, TRAJECTORIES, mapping, "--trajectory-columns", decimal=decimal)
     _check_years(_numbers(df, "year"), df["row"], path, "year", TRAJECTORY_YEARS)
     _check_magnitude(_numbers(df, "value"), df["row"], path, "value")
     _check_names(df, path)
@@ -747,8 +748,7 @@ def check_netcdf(path: Path, option: str) -> None:
 
 
 def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None,
-                option: str = "--columns", *, decimal: str | None = None,
-                option_names: Mapping[str, str] | None = None) -> pd.DataFrame:
+                option: str = "--columns", *, decimal: str | None = None) -> pd.DataFrame:
     """Read a yearly series: ``year`` and the value column (and its ``_sd`` when present).
 
     Parameters
@@ -763,8 +763,6 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
         Option name used in messages.
     decimal
         Decimal mark, ``"."`` or ``","``; None detects it (:func:`decimal_marks`).
-    option_names
-        How messages spell the ``decimal`` option.
 
     Returns
     -------
@@ -789,7 +787,7 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
             raise InputError(f"{path} has no column {col!r}; pick one with --value or map it "
                              f"with {option} {col}=YOUR_HEADER (columns present: "
                              f"{', '.join(map(str, df.columns))}).")
-    df = decimal_marks(df, ["year", value, f"{value}_sd"], path, sep, decimal, option_names)
+    df = decimal_marks(df, ["year", value, f"{value}_sd"], path, sep, decimal)
     rows = pd.Series(df.index.to_numpy(dtype=int), index=df.index)
     years = pd.to_numeric(df["year"], errors="coerce")
     with np.errstate(invalid="ignore"):

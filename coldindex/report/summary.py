@@ -248,7 +248,8 @@ def release_figures(cfg: Config, indices: pd.DataFrame, classes: pd.DataFrame, s
         pairs.append((area_col, column_label(area_col)))
     regimes = shifts.files["regimes.csv"] if shifts is not None else None
     figs["series"] = fg.series_figure(indices, pairs, classes, regimes, reference=ref_years)
-    ok_years = [y for y, note in zip(res.years, indices["note"].astype(object).fillna(""), strict=True)
+    notes = indices["note"].astype(object).fillna("")
+    ok_years = [y for y, note in zip(res.years, notes, strict=True)
                 if not str(note).startswith("no indices")]
     idx = [res.years.index(y) for y in ok_years]
     outline = [np.asarray(r.coords) for p in getattr(domain.polygon_xy, "geoms",
