@@ -16,6 +16,7 @@ import pandas as pd
 from numpy.typing import ArrayLike
 from scipy.special import ndtr
 
+from coldindex.config import parse_rule
 from coldindex.errors import InputError
 
 CLASSES = ("cold", "average", "warm")
@@ -74,20 +75,8 @@ def colder_direction(column: str) -> str:
         if base.endswith(suffix):
             return "lower"
     raise InputError(f"Cannot tell whether lower or higher values of {column!r} are colder; "
-                     "say so with --colder lower|higher.")
-
-
-def parse_reference(text: str | None) -> tuple[int, int] | None:
-    """Parse ``A-B`` into (A, B), or None."""
-    if not text:
-        return None
-    try:
-        a, b = (int(v) for v in text.split("-"))
-    except ValueError:
-        raise InputError(f"--reference needs two years A-B, got: {text!r}.") from None
-    if a > b:
-        raise InputError(f"--reference needs A <= B, got: {text!r}.")
-    return a, b
+                     "say so with {option} lower|higher when classifying it, and give those "
+                     "cut values (cuts.json) to the other stages.", option=("classify", "colder"))
 
 
 def reference_values(years: ArrayLike, values: ArrayLike,
@@ -128,19 +117,12 @@ def cuts_by_rule(years: ArrayLike, values: ArrayLike, column: str, rule: str = "
     if len(ref) < 3:
         raise InputError(f"The reference period holds {len(ref)} values of {column!r}; "
                          "cut values need at least 3.")
-    if rule == "tercile":
+    k = parse_rule(rule)
+    if k is None:
         low, high = (float(q) for q in np.quantile(ref, [1 / 3, 2 / 3]))
-    elif rule.startswith("sd:"):
-        try:
-            k = float(rule[3:])
-        except ValueError:
-            raise InputError(f"--rule sd:K needs a number K, got: {rule!r}.") from None
-        if k < 0:
-            raise InputError(f"--rule sd:K needs K >= 0, got: {rule!r}.")
+    else:
         mu, sd = float(np.mean(ref)), float(np.std(ref, ddof=1))
         low, high = mu - k * sd, mu + k * sd
-    else:
-        raise InputError(f"--rule needs to be tercile or sd:K, got: {rule!r}.")
     ref_text = f"{reference[0]}-{reference[1]}" if reference else None
     return Cuts(column, low, high, rule, ref_text, direction or colder_direction(column))
 

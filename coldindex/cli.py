@@ -208,6 +208,14 @@ def _workers(n: int) -> int:
                  else os.cpu_count() or 1)
 
 
+def _inputs(**named: Path | None) -> None:
+    """Refuse missing or repeated inputs before importing anything heavy."""
+    from coldindex.io.files import check_input_files
+
+    check_input_files({("--" + k.replace("_", "-") if k.islower() else k): p
+                       for k, p in named.items() if p is not None})
+
+
 def _write_stage(out: Path, command: str, run: StageRun, inputs: tuple) -> list[Path]:
     """Write a single command's stage outputs together (all or none replaced)."""
     from coldindex.io.writers import plan_outputs, write_outputs
@@ -252,6 +260,7 @@ def check(
     read = C.from_flags(C.ReadOptions, decimal=decimal, date_format=date_format)
     source, mapping, popts = _cast_source(casts, profiles, columns, profile_columns,
                                           max_gap_m, average_m)
+    _inputs(CASTS=source, domain=domain, bathymetry=bathymetry)
     from rich.table import Table
 
     from coldindex.io.writers import plan_outputs, write_table
@@ -362,11 +371,7 @@ def index(
     read = C.from_flags(C.ReadOptions, decimal=decimal, date_format=date_format)
     source, mapping, popts = _cast_source(casts, profiles, columns, profile_columns,
                                           max_gap_m, average_m)
-    from coldindex.io.files import check_input_files
-
-    check_input_files({k: p for k, p in (("CASTS", source), ("--domain", domain),
-                                         ("--bathymetry", bathymetry),
-                                         ("--regions", regions)) if p is not None})
+    _inputs(CASTS=source, domain=domain, bathymetry=bathymetry, regions=regions)
     from coldindex.pipeline import run_index
 
     with _ProgressBar("Mapping survey years", _show_progress(progress)) as bar:
@@ -469,6 +474,7 @@ def classify(
     """Classify each year as cold, average or warm by fixed cut values."""
     opts = C.from_flags(C.ClassifyConfig, columns=value, cut_values=cut_values, rule=rule,
                         reference=reference, colder=colder)
+    _inputs(SERIES=series, cuts=cuts)
     from rich.table import Table
 
     from coldindex.pipeline import read_cuts_for, run_classify
@@ -522,6 +528,7 @@ def shifts(
                         alpha=alpha, p_max=p_max, huber=huber, prewhiten=prewhiten,
                         subsample=subsample, min_size=min_size, boot=boot, seed=seed,
                         null_window=null_window)
+    _inputs(SERIES=series)
     from rich.table import Table
 
     from coldindex.pipeline import run_shifts
@@ -599,11 +606,10 @@ def skill(
                         outlook_q_max=outlook_q_max, confidence=confidence,
                         reference=reference, leave_out=leave_out)
     ice_opts = C.from_flags(C.IceFieldsOptions, quantity=ice_quantity, region=ice_region)
-    from coldindex.io.files import check_input_files
+    _inputs(ice=ice, target=target, cuts=cuts)
     from coldindex.pipeline import read_cuts_for, run_skill
     from coldindex.report.text import skill_lines
 
-    check_input_files({"--ice": ice, "--target": target})
     given = read_cuts_for(cuts, value) if cuts is not None else None
     run = run_skill(ice, target, value, opts, ice_opts, given,
                     parse_column_map(ice_columns, "--ice-columns"),
@@ -652,12 +658,11 @@ def project(
     opts = C.from_flags(C.ProjectConfig, column=value, adjust=adjust, calibration=calibration,
                         short_calibration=short_calibration, window=window, p_stop=p_stop,
                         units=units)
-    from coldindex.io.files import check_input_files
+    _inputs(observed=observed, cuts=cuts, domain=domain, fields=fields,
+            **{f"TRAJECTORIES[{k}]": p for k, p in enumerate(trajectories)})
     from coldindex.io.readers import check_netcdf, read_domain
     from coldindex.pipeline import GriddedSource, read_cuts_for, run_project
 
-    check_input_files({"--observed": observed, **{f"TRAJECTORIES[{k}]": p
-                                                  for k, p in enumerate(trajectories)}})
     gridded = None
     if fields is not None:  # the gridded path: every file must open as NetCDF
         for p in (fields, *trajectories):
@@ -715,6 +720,7 @@ def ice(
     """
     opts = C.from_flags(C.IceFieldsOptions, density_kg_m3=density_kg_m3,
                         extent_threshold=extent_threshold, thickness=thickness)
+    _inputs(regions=regions, **{f"FIELDS[{k}]": p for k, p in enumerate(fields)})
     from coldindex.sources import run_ice
 
     res = run_ice(fields, regions, out, opts)

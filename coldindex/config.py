@@ -58,6 +58,7 @@ _FLAGS: dict[tuple[str, str], str] = {
     ("shifts", "column"): "--value", ("skill", "column"): "--value",
     ("project", "column"): "--value", ("classify", "columns"): "--value",
     ("ice_fields", "quantity"): "--ice-quantity", ("ice_fields", "region"): "--ice-region",
+    ("inputs", "casts"): "CASTS", ("", "columns"): "--columns",
 }
 
 
@@ -73,12 +74,19 @@ def flag_naming(table: str, key: str) -> str:
     return option_name(table, key, flag=True)
 
 
-class Refusal(ValueError):
-    """A value refused by a validator: which key, what it needs, what it got."""
+class Refusal(ConfigError, ValueError):
+    """A value refused by a parser or validator: which key, what it needs, what it got.
+
+    A :class:`ValueError` inside a model's validator (pydantic then reports it with the
+    table's naming), a :class:`~coldindex.errors.ConfigError` anywhere else.
+    """
 
     def __init__(self, key: str, expected: str, got: object) -> None:
-        super().__init__(f"{key} needs to be {expected}, got: {got!r}")
+        super().__init__(f"{key} needs to be {expected}, got: {got!r}.")
         self.key, self.expected, self.got = key, expected, got
+
+    def __reduce__(self) -> tuple[type, tuple[str, str, object]]:  # type: ignore[override]
+        return (type(self), (self.key, self.expected, self.got))
 
 
 def _need(ok: bool, key: str, expected: str, got: object) -> None:

@@ -243,7 +243,8 @@ def derive_domain(lon: ArrayLike, lat: ArrayLike, year: ArrayLike, station: Arra
     keep = np.array([s in frequent for s in station])
     if keep.sum() < 3:
         raise InputError("Too few stations are sampled in at least half of the years to derive "
-                         "a domain; give a domain polygon with --domain.")
+                         "a domain; give a domain polygon with {option}.",
+                         option=("inputs", "domain"))
     lon0 = central_lon(lon[keep])
     crs = albers_for(lon0, float(lat[keep].min()), float(lat[keep].max()))
     fwd = pyproj.Transformer.from_crs(crs.geodetic_crs, crs, always_xy=True)
@@ -352,7 +353,7 @@ def make_grid(domain: Domain, cell_km: float = 5.0) -> Grid:
     ny = int(np.ceil((maxy - y0) / cell_km))
     if nx * ny > 4_000_000:
         raise InputError(f"A {cell_km} km grid over this domain would have {nx * ny} cells; "
-                         "choose a larger --grid-km.")
+                         "choose a larger {option}.", option=("index", "grid_km"))
     xe = x0 + cell_km * np.arange(nx + 1)
     ye = y0 + cell_km * np.arange(ny + 1)
     xx0, yy0 = np.meshgrid(xe[:-1], ye[:-1])

@@ -18,8 +18,8 @@ Naming = Callable[[str, str], str]
 
 
 def key_naming(table: str, key: str) -> str:
-    """The config-file name of an option: ``table.key``."""
-    return f"{table}.{key}" if table else key
+    """The config-file name of an option: ``table.key`` (a whole table: ``[key]``)."""
+    return f"{table}.{key}" if table else f"[{key}]"
 
 
 class ColdindexError(Exception):

@@ -237,9 +237,9 @@ def trajectories_from_netcdf(paths: Sequence[Path], fields_path: Path, column: s
     pandas.DataFrame
         ``model``, ``scenario``, ``member``, ``year``, ``value`` (adjusted per cell).
     """
-    from coldindex.skill import parse_months
+    from coldindex.config import parse_months
 
-    months = parse_months(season)
+    months = parse_months(season, "--season")
     if not fields_path.is_file():
         raise InputError(f"{fields_path} does not exist; give the fields.nc of coldindex "
                          "index.")

@@ -85,16 +85,19 @@ class ProjectOptions:
     adjusted_upstream: str = "none"
 
     def __post_init__(self) -> None:
+        def refuse(key: str, sentence: str) -> None:
+            raise InputError("{option} " + sentence, option=("project", key))
+
         if self.adjust not in ADJUSTMENTS:
-            raise InputError(f"--adjust needs to be one of {', '.join(ADJUSTMENTS)}, got: "
-                             f"{self.adjust!r}.")
+            refuse("adjust", f"needs to be one of {', '.join(ADJUSTMENTS)}, got: "
+                   f"{self.adjust!r}.")
         if self.window < 1:
-            raise InputError(f"--window needs to be >= 1, got: {self.window}.")
+            refuse("window", f"needs to be >= 1, got: {self.window}.")
         if not 0 < self.p_stop < 1:
-            raise InputError(f"--p-stop needs to be in (0, 1), got: {self.p_stop}.")
+            refuse("p_stop", f"needs to be in (0, 1), got: {self.p_stop}.")
         if self.short_calibration and self.calibration is None:
-            raise InputError("--short-calibration needs an explicit --calibration A-B (the "
-                             "years you accept as calibration).")
+            refuse("short_calibration", "needs an explicit calibration period A-B (the years "
+                   "you accept as calibration).")
 
 
 def trajectory_frame(raw: pd.DataFrame, source: str = "trajectories") -> pd.DataFrame:
@@ -138,8 +141,9 @@ def check_units(column: str, units: str | None) -> None:
         return
     got = UNIT_ALIASES.get(units.strip().lower(), units)
     if got != expected:
-        raise InputError(f"--units {units!r} differ from the unit of {column!r} ({expected}); "
-                         "convert the trajectories first (kelvin: subtract 273.15).")
+        raise InputError(f"{{option}} {units!r} differ from the unit of {column!r} ({expected}); "
+                         "convert the trajectories first (kelvin: subtract 273.15).",
+                         option=("project", "units"))
 
 
 def _to_scale(x: FloatArray, bound: float | None) -> FloatArray:
@@ -286,7 +290,8 @@ def adjust_series(years: ArrayLike, values: ArrayLike, obs_years: ArrayLike,
     if in_cal.sum() < 5 or len(obs_cal) < 5:
         raise InputError(f"The calibration period {calibration[0]}-{calibration[1]} holds "
                          f"{int(in_cal.sum())} model years and {len(obs_cal)} observed years; "
-                         "it needs at least 5 of each (adjust --calibration).")
+                         "it needs at least 5 of each (adjust {option}).",
+                         option=("project", "calibration"))
     z = _to_scale(v, bound)
     mc = z[in_cal]
     oc = _to_scale(obs_cal, bound)
@@ -703,7 +708,7 @@ def project(traj: pd.DataFrame, obs_years: ArrayLike, obs_values: ArrayLike, cut
     if cal[0] > cal[1] or traj["year"].max() < cal[0] or traj["year"].min() > cal[1]:
         raise InputError(f"The trajectories ({traj['year'].min()}-{traj['year'].max()}) do not "
                          f"overlap the calibration period {cal[0]}-{cal[1]}; choose "
-                         "--calibration within both records.")
+                         "{option} within both records.", option=("project", "calibration"))
     model_years = set(traj["year"].tolist())
     n_cal = int(sum(1 for y in finite if cal[0] <= y <= cal[1] and y in model_years))
     adjusting = options.adjust != "none" or options.adjusted_upstream != "none"

@@ -209,7 +209,8 @@ def run_qc(raw: pd.DataFrame, domain: Domain | None = None, *, source: str = "ca
         if share > 0.5:
             raise InputError(f"{source}: {share:.0%} of the values in column 'lat' lie outside "
                              "-90..90; latitude and longitude look swapped, map them with "
-                             "--columns lat=YOUR_LAT,lon=YOUR_LON.")
+                             "{option} (lat = your longitude's header, lon = your latitude's).",
+                             option=("", "columns"))
     mark(df["lat"].abs().gt(90), "lat_out_of_range", "lat = " + df["lat"].astype(str))
     mark(df["lon"].lt(-180) | df["lon"].gt(360), "lon_out_of_range",
          "lon = " + df["lon"].astype(str))

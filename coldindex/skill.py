@@ -43,38 +43,6 @@ MONTH_NAMES = ("jan", "feb", "mar", "apr", "may", "jun", "jul", "aug", "sep", "o
 MIN_YEARS = 10
 
 
-def parse_months(text: str) -> list[int]:
-    """Parse a month span ``A-B`` (wrapping over the new year, e.g. ``11-4``) or a list."""
-    try:
-        if "-" in text:
-            a, b = (int(v) for v in text.split("-"))
-            months = list(range(a, b + 1)) if a <= b else [*range(a, 13), *range(1, b + 1)]
-        else:
-            months = [int(v) for v in text.split(",")]
-    except ValueError:
-        raise InputError(f"--months needs a span like 11-4 or a list like 1,2,3, got: "
-                         f"{text!r}.") from None
-    if not months or any(m < 1 or m > 12 for m in months):
-        raise InputError(f"--months needs months in 1..12, got: {text!r}.")
-    return months
-
-
-def parse_lags(text: str) -> list[int]:
-    """Parse lags ``A-B`` (inclusive) or a list ``0,1,3`` into sorted whole years >= 0."""
-    try:
-        if "-" in text:
-            a, b = (int(v) for v in text.split("-"))
-            lags = list(range(a, b + 1))
-        else:
-            lags = sorted({int(v) for v in text.split(",")})
-    except ValueError:
-        raise InputError(f"--lags needs a span like 0-2 or a list like 0,1, got: "
-                         f"{text!r}.") from None
-    if not lags or lags[0] < 0:
-        raise InputError(f"--lags needs whole years >= 0, got: {text!r}.")
-    return lags
-
-
 def ice_frame(raw: pd.DataFrame, source: str = "ice file") -> pd.DataFrame:
     """Validate an ice table read as strings (``row``, ``year``, ``month``, ``ice``).
 
@@ -125,14 +93,14 @@ def survey_month(given: int | None = None, median_doy: ArrayLike | None = None) 
     """
     if given:
         if not 1 <= int(given) <= 12:
-            raise InputError(f"--survey-month (skill.survey_month) needs a month in 1..12, "
-                             f"got: {given}.")
+            raise InputError(f"{{option}} needs a month in 1..12, got: {given}.",
+                             option=("skill", "survey_month"))
         return int(given)
     doy = np.asarray(median_doy if median_doy is not None else [], float)
     doy = doy[np.isfinite(doy)]
     if len(doy) == 0:
         raise InputError("The target has no median_doy column to tell the survey month; give "
-                         "it with --survey-month M (1..12) or skill.survey_month.")
+                         "it with {option} (1..12).", option=("skill", "survey_month"))
     day = int(np.clip(np.round(np.median(doy)), 1, 365))
     return int((pd.Timestamp(2001, 1, 1) + pd.Timedelta(days=day - 1)).month)
 
@@ -169,9 +137,8 @@ def winter_labels(year: ArrayLike, month: ArrayLike, months: list[int], survey: 
     """
     if survey in months:
         raise InputError(f"The survey month {survey} falls inside the winter months "
-                         f"{','.join(map(str, months))}; choose --months (skill.months) that "
-                         "end before the survey starts, or set --survey-month "
-                         "(skill.survey_month).")
+                         f"{','.join(map(str, months))}; choose {{option}} that end before the "
+                         "survey starts, or give the survey month.", option=("skill", "months"))
     y = np.asarray(year, dtype=np.int64)
     m = np.asarray(month, dtype=np.int64)
     wraps = months[0] > months[-1]
@@ -202,7 +169,8 @@ def winter_predictors(ice: pd.DataFrame, months: list[int], aggregate: str = "me
         Indexed by winter label; columns ``ice_<mon>`` and the aggregate.
     """
     if aggregate not in ("mean", "max"):
-        raise InputError(f"--winter needs to be mean or max, got: {aggregate!r}.")
+        raise InputError(f"{{option}} needs to be mean or max, got: {aggregate!r}.",
+                         option=("skill", "winter"))
     sub = ice[ice["month"].isin(months)].copy()
     sub["winter"] = winter_labels(sub["year"], sub["month"], months, survey)
     wide = sub.pivot(index="winter", columns="month", values="ice").reindex(columns=months)
@@ -222,7 +190,7 @@ def _anomaly(values: pd.Series | FloatArray, years: ArrayLike,
         keep &= (y >= reference[0]) & (y <= reference[1])
     if keep.sum() < 2:
         raise TooFewDataError("The reference period holds fewer than 2 values; widen "
-                              "--reference.")
+                              "{option}.", option=("skill", "reference"))
     return v - float(np.mean(v[keep]))
 
 
@@ -400,7 +368,8 @@ def hindcast(predictors: pd.DataFrame, target: pd.Series, lags: int | Sequence[i
         The forecasts and their skill.
     """
     if leave_out < 1 or leave_out % 2 == 0:
-        raise InputError(f"--leave-out needs an odd number >= 1, got: {leave_out}.")
+        raise InputError(f"{{option}} needs an odd number >= 1, got: {leave_out}.",
+                         option=("skill", "leave_out"))
     lag_list = sorted({int(lags)} if isinstance(lags, (int, np.integer)) else
                       {int(v) for v in lags})
     X = _lagged_candidates(predictors, lag_list)
@@ -571,11 +540,12 @@ def skill_and_outlook(predictors: pd.DataFrame, target: pd.Series, lags: list[in
         ``(table, hindcast, outlook)``.
     """
     if outlook_lag is not None and outlook_lag not in lags:
-        raise InputError(f"--outlook-lag (skill.outlook_lag) {outlook_lag} is not among the "
-                         f"lags {', '.join(map(str, lags))}; add it to --lags (skill.lags).")
+        raise InputError(f"{{option}} {outlook_lag} is not among the lags "
+                         f"{', '.join(map(str, lags))}; add it to the lags.",
+                         option=("skill", "outlook_lag"))
     if not 0 < q_max <= 1:
-        raise InputError(f"--outlook-q-max (skill.outlook_q_max) needs to be in (0, 1], got: "
-                         f"{q_max}.")
+        raise InputError(f"{{option}} needs to be in (0, 1], got: {q_max}.",
+                         option=("skill", "outlook_q_max"))
     table = skill_table(predictors, target, lags, confidence, reference)
     hc = hindcast(predictors, target, lags if outlook_lag is None else [outlook_lag],
                   leave_out)

@@ -28,7 +28,7 @@ def test_direction_for_areas_and_temperatures():
     assert colder_direction("below_2c_km2") == "higher"
     assert colder_direction("below_m1c_km2_map") == "higher"
     assert colder_direction("bottom_mean_c") == "lower"
-    with pytest.raises(InputError, match="--colder"):
+    with pytest.raises(InputError, match="classify.colder lower|higher"):
         colder_direction("recruits")
     temps = classify(YEARS, VALUES, cuts_by_rule(YEARS, VALUES, "bottom_mean_c"))
     areas = classify(YEARS, VALUES, cuts_by_rule(YEARS, VALUES, "below_2c_km2"))

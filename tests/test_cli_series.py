@@ -117,7 +117,8 @@ def test_project_refuses_a_short_calibration_unless_accepted(tmp_path: Path):
     assert not (tmp_path / "a" / "emergence.csv").exists()
     code, text = run("project", traj, "--observed", obs, "--value", "bottom_mean_c", "--out",
                      tmp_path / "b", "--units", "degC", "--short-calibration")
-    assert code == 2 and "--short-calibration needs to be false unless the calibration period is given" in " ".join(text.split())
+    assert code == 2 and "--short-calibration needs to be false unless the calibration" in (
+        " ".join(text.split()))
     code, text = run("project", traj, "--observed", obs, "--value", "bottom_mean_c", "--out",
                      tmp_path / "c", "--units", "degC", "--calibration", "2012-2020",
                      "--short-calibration")

@@ -323,7 +323,8 @@ def test_calibration_guard_refuses_short_overlaps_unless_accepted():
     with pytest.raises(InputError, match=r"overlap in 7 years \(2014-2020\).*at least 20.*"
                        r"--short-calibration"):
         project(t, oy, obs, CUTS, ProjectOptions(adjust="qdm"))
-    with pytest.raises(InputError, match="needs an explicit --calibration"):
+    with pytest.raises(InputError,
+                       match="project.short_calibration needs an explicit calibration period"):
         ProjectOptions(adjust="qdm", short_calibration=True)
     res = project(t, oy, obs, CUTS, ProjectOptions(adjust="qdm", calibration=(2014, 2020),
                                                    short_calibration=True))

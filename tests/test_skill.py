@@ -7,6 +7,7 @@ from typer.testing import CliRunner
 
 from coldindex.classify import cuts_by_rule
 from coldindex.cli import app
+from coldindex.config import parse_months
 from coldindex.errors import InputError, TooFewDataError
 from coldindex.io.readers import read_ice
 from coldindex.skill import (
@@ -14,7 +15,6 @@ from coldindex.skill import (
     ice_frame,
     outlook,
     outlook_sentence,
-    parse_months,
     skill_and_outlook,
     skill_table,
     survey_month,
@@ -62,7 +62,7 @@ def test_survey_month_given_or_from_median_survey_day():
     assert survey_month(None, [30.0, 40.0, np.nan]) == 2  # day 35 is 4 February
     assert survey_month(0, [182.0, 190.0]) == 7
     assert survey_month(None, [365.0]) == 12
-    with pytest.raises(InputError, match="--survey-month"):
+    with pytest.raises(InputError, match="skill.survey_month"):
         survey_month(13)
     with pytest.raises(InputError, match="no median_doy"):
         survey_month(None, [np.nan])
@@ -216,7 +216,7 @@ def test_outlook_lag_can_be_given_and_must_be_requested():
     _, hc, o = skill_and_outlook(P, t, [0, 1, 2], c, outlook_lag=2)
     assert hc.lags == (2,) and set(hc.table["lag"]) == {2} and o["lag"] == 2
     assert o["basis"] == "climatology"  # nothing at lag 2
-    with pytest.raises(InputError, match="--outlook-lag .* 3 is not among the lags 0, 1, 2"):
+    with pytest.raises(InputError, match="skill.outlook_lag 3 is not among the lags 0, 1, 2"):
         skill_and_outlook(P, t, [0, 1, 2], c, outlook_lag=3)
 
 
