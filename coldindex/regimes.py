@@ -484,7 +484,7 @@ def gls_step_t(Y: ArrayLike, steps: ArrayLike, target: ArrayLike, rho: float | N
             den = np.sum(e * e, axis=1)
             num = np.sum(e[:, :-1] * e[:, 1:], axis=1)
             r1 = np.divide(num, den, out=np.zeros(M), where=den > 0)
-            r = np.clip((n * r1 + k) / (n - k - 2.0), -0.9, 0.9)
+            r = np.clip((n * r1 + k) / np.maximum(n - k - 2.0, 1.0), -0.9, 0.9)
         else:
             r = np.full(M, float(rho))
         w = np.sqrt(1.0 - r * r)
