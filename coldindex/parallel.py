@@ -24,9 +24,11 @@ from __future__ import annotations
 import multiprocessing as mp
 import os
 import signal
-from collections.abc import Callable, Sequence
+import threading
+from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
+from contextlib import contextmanager
 from types import TracebackType
 from typing import Any, TypeVar
 
@@ -53,6 +55,9 @@ per-year work.
 """
 
 _SHARED: Any = None
+_PIN_LOCK = threading.Lock()
+_PIN_DEPTH = 0
+_PIN_CONTROL: threadpool_limits | None = None
 
 
 def default_workers() -> int:
@@ -82,10 +87,33 @@ def warm_up(workers: int = 2, scheduler: str | None = None) -> None:
         forkserver.ensure_running()
 
 
+@contextmanager
+def _pinned(blas_threads: int) -> Iterator[None]:
+    """Limit the BLAS and OpenMP pools while any task of this process runs.
+
+    The limit is process-wide: with several tasks at once in one process (a dask worker
+    with several threads) the first to start sets it and the last to end restores the
+    original, so no task runs with the pool another task's end restored.
+    """
+    global _PIN_DEPTH, _PIN_CONTROL
+    with _PIN_LOCK:
+        if _PIN_DEPTH == 0:
+            _PIN_CONTROL = threadpool_limits(limits=blas_threads)
+        _PIN_DEPTH += 1
+    try:
+        yield
+    finally:
+        with _PIN_LOCK:
+            _PIN_DEPTH -= 1
+            if _PIN_DEPTH == 0 and _PIN_CONTROL is not None:
+                _PIN_CONTROL.restore_original_limits()
+                _PIN_CONTROL = None
+
+
 def run_pinned(func: Callable[[Any, T], R], shared: Any, item: T,
                blas_threads: int = BLAS_THREADS) -> R:
     """``func(shared, item)`` with the BLAS and OpenMP pools limited to ``blas_threads``."""
-    with threadpool_limits(limits=blas_threads):
+    with _pinned(blas_threads):
         return func(shared, item)
 
 
@@ -118,9 +146,9 @@ class YearPool:
         None for local processes; ``"local"`` starts a dask ``LocalCluster`` of
         ``workers`` single-threaded processes; any other value is the address of a
         running dask.distributed scheduler (e.g. ``tcp://10.0.0.5:8786``), whose
-        workers need ``coldindex`` installed at the same version. Give the workers one
-        thread each (``dask worker --nthreads 1``): the BLAS pin is per process, and
-        tasks sharing a process would share it.
+        workers need ``coldindex`` installed at the same version. One thread a worker
+        (``dask worker --nthreads 1``) uses one core a year, as here; with more threads,
+        a process's tasks share one BLAS pin (held while any of them runs).
     blas_threads
         BLAS/OpenMP threads a task (:data:`BLAS_THREADS`).
     """
