@@ -213,10 +213,45 @@ def write_json(obj: Any, target: Path) -> Path:
 
 
 def write_netcdf(ds: xr.Dataset, target: Path) -> Path:
-    """Write a Dataset as NetCDF-4 with compressed float variables, atomically."""
+    """Write a Dataset as NetCDF-4 with compressed float variables, atomically.
+
+    Lazy (dask) variables, like the per-year fields of :func:`fields_dataset`, are
+    written after the rest, one chunk along their first axis at a time, in a fixed
+    order, and stored in chunks of that size; memory holds about one year of one
+    variable, and the same dataset gives the same bytes.
+    """
+    import dask.array as da
+
+    lazy = [str(name) for name, v in ds.data_vars.items() if isinstance(v.data, da.Array)]
     encoding = {name: {"zlib": True, "complevel": 4} for name, v in ds.data_vars.items()
-                if v.dtype.kind == "f"}
-    return _write_with(target, lambda p: ds.to_netcdf(p, engine="netcdf4", encoding=encoding))
+                if v.dtype.kind == "f" and name not in lazy}
+
+    def write(p: Path) -> None:
+        ds.drop_vars(lazy).to_netcdf(p, engine="netcdf4", encoding=encoding)
+        if lazy:
+            _append_lazy(p, ds, lazy)
+
+    return _write_with(target, write)
+
+
+def _append_lazy(path: Path, ds: xr.Dataset, names: Sequence[str]) -> None:
+    """Append lazy variables to a NetCDF-4 file, one chunk of the first axis at a time."""
+    import netCDF4
+
+    with netCDF4.Dataset(path, "a") as nc:
+        for name in names:
+            v = ds[name]
+            lead = int(v.data.chunks[0][0]) if v.shape[0] else 1
+            fill = np.array(np.nan, dtype=v.dtype) if v.dtype.kind == "f" else None
+            var = nc.createVariable(name, str(v.dtype), tuple(str(d) for d in v.dims),
+                                    zlib=True, complevel=4,
+                                    chunksizes=(lead, *v.shape[1:]) if v.size else None,
+                                    fill_value=fill)
+            var.setncatts(dict(v.attrs))
+            for start in range(0, v.shape[0], lead):
+                stop = min(start + lead, v.shape[0])
+                var[start:stop] = np.asarray(v.data[start:stop].compute(
+                    scheduler="synchronous"))
 
 
 def write_figure(fig: Any, target: Path, close: bool = True) -> Path:
@@ -412,6 +447,46 @@ def survey_times(years: Sequence[int], casts: pd.DataFrame) -> tuple[np.ndarray,
     return time, bounds
 
 
+def _year_fields(estimate: np.ndarray, sd: np.ndarray, grid: Grid,
+                 what: float | str | None, token: str) -> Any:
+    """One lazy (n_years, ny, nx) float32 field of ``fields.nc``, one dask chunk a year.
+
+    ``what`` is None for the estimate, ``"sd"`` for its standard deviation, or a
+    threshold T [°C] for ``P(T_cell < T) = Phi((T - m) / s)`` from the float32 map and
+    SD (as stored). Cells outside the domain are NaN. ``token`` names the fields'
+    content: the dask task names are made from it, so the write order, and the
+    file's bytes, are the same from run to run.
+    """
+    import dask.array as da
+    from scipy.special import ndtr
+
+    est = np.asarray(estimate, float)
+    sdv = np.asarray(sd, float)
+    ny, nx = grid.shape
+    mask = grid.mask
+    n_years = est.shape[0]
+
+    def place(k: int) -> np.ndarray:
+        m32 = grid.to_2d(est[k]).astype("float32")
+        if what is None:
+            return m32
+        s32 = grid.to_2d(sdv[k]).astype("float32")
+        if what == "sd":
+            return s32
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p = ndtr((float(what) - m32.astype(float)) / s32.astype(float))
+        return np.where(mask, p, np.nan).astype("float32")
+
+    def block(block_id: tuple[int, int, int]) -> np.ndarray:
+        return place(block_id[0])[None]
+
+    if n_years == 0:
+        return np.full((0, ny, nx), np.nan, dtype="float32")
+    return da.map_blocks(block, dtype="float32", chunks=((1,) * n_years, (ny,), (nx,)),
+                         name=f"coldindex-field-{what}-{token}", meta=np.empty(
+                             (0, 0, 0), dtype="float32"))
+
+
 def fields_dataset(years: list[int], estimate: np.ndarray, sd: np.ndarray,
                    thresholds: Sequence[float], grid: Grid, domain: Domain,
                    casts: pd.DataFrame) -> xr.Dataset:
@@ -436,12 +511,17 @@ def fields_dataset(years: list[int], estimate: np.ndarray, sd: np.ndarray,
     Returns
     -------
     xarray.Dataset
-        The dataset, ready for :func:`write_netcdf`.
+        The dataset, ready for :func:`write_netcdf`. The per-year fields are lazy
+        (dask, one chunk a year, made from ``estimate`` and ``sd`` when read), so a
+        fine grid is placed on the 2-D grid and written one year at a time instead of
+        being held whole, in several copies, at once.
     """
-    from scipy.special import ndtr
-
-    est2 = grid.to_2d(estimate).astype("float32")
-    sd2 = grid.to_2d(sd).astype("float32")
+    h = hashlib.blake2b(digest_size=16)
+    for a in (estimate, sd, grid.area_km2):
+        h.update(np.ascontiguousarray(a, dtype=float).tobytes())
+    token = h.hexdigest()
+    est2 = _year_fields(estimate, sd, grid, None, token)
+    sd2 = _year_fields(estimate, sd, grid, "sd", token)
     dims = ("year", "y", "x")
     common = {"grid_mapping": "albers_conical_equal_area", "coordinates": "lat lon",
               "cell_measures": "area: cell_area"}
@@ -456,10 +536,9 @@ def fields_dataset(years: list[int], estimate: np.ndarray, sd: np.ndarray,
             "temperature (smooth process)", **common}),
     }
     for t in thresholds:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            p = ndtr((t - est2.astype(float)) / sd2.astype(float))
+        p = _year_fields(estimate, sd, grid, float(t), token)
         label = threshold_label(t)
-        data_vars[f"p_below_{label}c"] = (dims, p.astype("float32"), {
+        data_vars[f"p_below_{label}c"] = (dims, p, {
             "units": "1", "long_name": f"probability that the sea-floor water temperature is "
             f"below {np.format_float_positional(float(t), trim='-')} degC", **common})
     area = np.where(grid.mask, grid.area_km2 * 1e6, np.nan)
