@@ -89,6 +89,18 @@ def test_a_dask_cluster_gives_the_serial_bytes(survey, serial, box_domain):
     _assert_same(serial, res)
 
 
+def test_a_year_depends_on_nothing_but_itself(survey, box_domain):
+    # What lets years run anywhere in any order: dropping a year moves no other year.
+    casts, grid, _, regions = survey
+    opts = IndexOptions(thresholds=(0.0,), grid_km=15.0, sims=8, param_draws=2, min_casts=20,
+                        variogram="exponential")
+    full = compute_indices(casts, box_domain, grid, opts, regions=regions).table
+    part = compute_indices(casts[casts["year"] != 2001], box_domain, grid, opts,
+                           regions=regions, workers=2).table
+    pd.testing.assert_frame_equal(full[full["year"] != 2001].reset_index(drop=True), part,
+                                  check_exact=True)
+
+
 @pytest.mark.parametrize("workers", [1, 2])
 def test_an_error_in_a_worker_year_is_raised_as_itself(survey, box_domain, workers):
     casts, grid, opts, _ = survey
