@@ -671,8 +671,10 @@ def project(
     given = read_cuts_for(cuts, value) if cuts is not None else None
     area = None
     if value.startswith("below_"):
+        from coldindex.io.files import is_file
+
         dom_path = domain or (observed.parent / "domain.geojson")
-        if not dom_path.is_file():
+        if not is_file(dom_path):
             raise ColdindexError(f"Areas are bounded by the domain area; give --domain (no "
                                  f"{dom_path} beside the observed series).")
         area = read_domain(dom_path).area_km2
@@ -796,7 +798,9 @@ def init(
 
     prepare_out_dir(folder)
     target = folder / "coldindex.toml"
-    if target.exists():
+    from coldindex.io.files import is_file
+
+    if is_file(target):
         raise OutputError(f"{target} already exists; remove it or choose another folder.")
     if from_demo:
         from coldindex.demo import write_scenario

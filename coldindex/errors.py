@@ -28,29 +28,37 @@ class ColdindexError(Exception):
     Parameters
     ----------
     message
-        One sentence; ``{option}`` marks where the option's name goes.
+        One sentence; ``{option}`` marks where the option's name goes (``{other}``
+        where a second option's goes).
     option
         ``(table, key)`` of the option the sentence is about, or None.
+    other
+        ``(table, key)`` of a second option the sentence names, or None.
     """
 
     exit_code = 2
 
-    def __init__(self, message: str, option: tuple[str, str] | None = None) -> None:
+    def __init__(self, message: str, option: tuple[str, str] | None = None,
+                 other: tuple[str, str] | None = None) -> None:
         super().__init__(message)
         self.message = message
         self.option = option
+        self.other = other
 
     def render(self, naming: Naming = key_naming) -> str:
-        """The sentence, with the option named by ``naming`` (config key by default)."""
-        if self.option is None or "{option}" not in self.message:
-            return self.message
-        return self.message.replace("{option}", naming(*self.option))
+        """The sentence, with the options named by ``naming`` (config keys by default)."""
+        text = self.message
+        for mark, opt in (("{option}", self.option), ("{other}", self.other)):
+            if opt is not None:
+                text = text.replace(mark, naming(*opt))
+        return text
 
     def __str__(self) -> str:
         return self.render()
 
-    def __reduce__(self) -> tuple[type, tuple[str, tuple[str, str] | None]]:
-        return (type(self), (self.message, self.option))  # survives worker processes
+    def __reduce__(self) -> tuple[type, tuple[str, tuple[str, str] | None,
+                                              tuple[str, str] | None]]:
+        return (type(self), (self.message, self.option, self.other))  # survives processes
 
 
 class InputError(ColdindexError):

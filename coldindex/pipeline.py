@@ -8,7 +8,6 @@ CLI passes a progress callback and prints what comes back.
 from __future__ import annotations
 
 import datetime as dt
-import json
 import platform
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -38,6 +37,7 @@ from coldindex.errors import (
 )
 from coldindex.indices import IndexResult, compute_indices
 from coldindex.interpolate import FAMILIES
+from coldindex.io import files as io_files
 from coldindex.io import readers, writers
 from coldindex.progress import ProgressEvent
 from coldindex.qc import QCResult, run_qc, year_hashes
@@ -71,16 +71,7 @@ class IndexRun:
 
 
 def _frozen(out: Path | None) -> dict:  # an index output folder or a release
-    if out is None or not (out / FROZEN_NAME).is_file():
-        return {}
-    try:
-        obj = json.loads((out / FROZEN_NAME).read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError):
-        obj = None
-    if not isinstance(obj, dict) or not isinstance(obj.get("variogram_family"), (str, type(None))):
-        raise InputError(f"{out / FROZEN_NAME} is damaged; delete it to choose the domain and "
-                         "variogram family afresh (past values may move).")
-    return obj
+    return readers.read_frozen(out / FROZEN_NAME) if out is not None else {}
 
 
 INDEX_OUTPUTS = ("qc.csv", "indices.csv", "fields.nc", DOMAIN_NAME, FROZEN_NAME,
@@ -254,8 +245,8 @@ def run_check(casts_path: Path, mapping: Mapping[str, str] | None = None,
     source = "none"
     if domain_path is not None:
         domain, source = readers.read_domain(domain_path), f"given ({domain_path.name})"
-    elif previous_out is not None and (previous_out / DOMAIN_NAME).is_file() and _frozen(
-            previous_out):
+    elif previous_out is not None and _frozen(previous_out) and io_files.is_file(
+            previous_out / DOMAIN_NAME):
         domain = readers.read_domain(previous_out / DOMAIN_NAME)
         source = f"frozen ({DOMAIN_NAME} of {previous_out.name})"
     qc_kwargs = {"source": str(casts_path), "freeze_tolerance_c": opts.freeze_tolerance_c,

@@ -598,8 +598,8 @@ def check_calibration(n_years: int, calibration: tuple[int, int], explicit: bool
         f"The observed record and the trajectories overlap in {n_years} years "
         f"({calibration[0]}-{calibration[1]}); the bias adjustment needs at least "
         f"{MIN_CALIBRATION_YEARS} calibration years: extend the observed series or start the "
-        "trajectories earlier, or, to accept fewer, give {option} A-B and allow a short "
-        "calibration.", option=("project", "calibration"))
+        "trajectories earlier, or, to accept fewer, give {option} A-B with {other}.",
+        option=("project", "calibration"), other=("project", "short_calibration"))
 
 
 @dataclass

@@ -25,7 +25,6 @@ from coldindex._version import __version__
 from coldindex.config import Config, check_inputs
 from coldindex.errors import (
     ColdindexError,
-    InputError,
     OutputError,
     StageError,
     TooFewDataError,
@@ -33,7 +32,7 @@ from coldindex.errors import (
 )
 from coldindex.io import files as io_files
 from coldindex.io import readers, releases, writers
-from coldindex.io.releases import LATEST_NAME, LOCK_NAME, RELEASE_FORMAT
+from coldindex.io.releases import RELEASE_FORMAT
 from coldindex.report.summary import WITHDRAWN_SHIFT
 
 UPDATE_STAGES = ("check", "index", "classify", "shifts", "skill", "project", "covariates",
@@ -59,16 +58,8 @@ def plan(cfg: Config, out: Path, previous: Path | None = None) -> list[str]:
     check_inputs(cfg)
     # The update writes only a new release-<n> folder, the pointer and its lock: inputs
     # may sit inside --out (even inside an older release) but never be one of those.
-    files = cfg.inputs.files()
-    writers.refuse_overwriting_inputs([out / LATEST_NAME, out / LOCK_NAME],
-                                      [*files.values(), cfg.source])
-    for key, p in files.items():
-        if out.exists() and io_files.same_file(out, p):
-            raise InputError(f"The output folder {out} is the file of {key}; choose a folder.")
-    if previous is not None and not previous.is_dir():
-        raise InputError(f"--previous {previous} is not a folder; give a release folder.")
-    if out.exists():
-        releases.pointer_target(out)  # refuse an untrusted pointer before creating anything
+    releases.check_out_folder(out, {**cfg.inputs.files(), "the config": cfg.source},
+                              previous)
     i = cfg.inputs
     lines = [f"check and index: {i.casts or i.profiles} on a {cfg.index.grid_km:g} km grid, "
              f"thresholds {', '.join(f'{t:g}' for t in cfg.index.thresholds)} °C, "
@@ -316,7 +307,7 @@ def _build_release(cfg: Config, rel: Path, prev: Path | None,
     for col in cfg.classify.columns:
         prev_cuts = (prev / "cuts" / f"{col}.json") if prev is not None else None
         old = None
-        if prev_cuts is not None and prev_cuts.is_file():
+        if prev_cuts is not None and io_files.is_file(prev_cuts):
             old = pl.read_cuts_for(prev_cuts, col)
             if old.rule != cfg.classify.rule or old.reference != (cfg.classify.reference
                                                                    or None):

@@ -36,6 +36,11 @@ def read_toml(path: Path) -> dict[str, Any]:
                           "at that place.") from None
 
 
+def is_file(path: Path) -> bool:
+    """Whether ``path`` is a file (a frozen domain, an earlier release's cut values)."""
+    return path.is_file()
+
+
 def same_file(a: Path, b: Path) -> bool:
     """True when two paths name the same file (real path, or device and inode)."""
     try:

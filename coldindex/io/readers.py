@@ -821,6 +821,20 @@ def read_series(path: Path, value: str, mapping: Mapping[str, str] | None = None
     return out.sort_values("year").reset_index(drop=True)
 
 
+def read_frozen(path: Path) -> dict:
+    """The state frozen by an earlier run (``frozen.json``), or {} when there is none."""
+    if not path.is_file():
+        return {}
+    try:
+        obj = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError):
+        obj = None
+    if not isinstance(obj, dict) or not isinstance(obj.get("variogram_family"), (str, type(None))):
+        raise InputError(f"{path} is damaged; delete it to choose the domain and variogram "
+                         "family afresh (past values may move).")
+    return obj
+
+
 def read_cuts(path: Path) -> dict:
     """Read a ``cuts.json`` file as a dictionary."""
     obj = read_json(path, "write it with coldindex classify")

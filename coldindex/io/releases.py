@@ -156,6 +156,26 @@ def previous_release(out: Path, previous: Path | None, used: list[str] | None = 
 
 
 
+def check_out_folder(out: Path, inputs: dict[str, Path | None], previous: Path | None) -> None:
+    """Refuse, before anything is created, an output folder the update must not use.
+
+    The update writes only a new ``release-<n>`` folder, the pointer and its lock: inputs
+    may sit inside ``out`` (even inside an older release) but never be one of those, nor
+    ``out`` itself; ``--previous`` must be a folder and ``latest`` trustworthy.
+    """
+    from coldindex.io.files import same_file
+
+    given = {k: p for k, p in inputs.items() if p is not None}
+    writers.refuse_overwriting_inputs([out / LATEST_NAME, out / LOCK_NAME], given.values())
+    for key, p in given.items():
+        if out.exists() and same_file(out, p):
+            raise InputError(f"The output folder {out} is the file of {key}; choose a folder.")
+    if previous is not None and not previous.is_dir():
+        raise InputError(f"--previous {previous} is not a folder; give a release folder.")
+    if out.exists():
+        pointer_target(out)  # refuse an untrusted pointer before creating anything
+
+
 @contextmanager
 def locked(out: Path) -> Iterator[None]:
     """Hold the exclusive lock of ``out`` (``out/.coldindex.lock``) for one update."""
