@@ -7,9 +7,9 @@ import pandas as pd
 import pytest
 import xarray as xr
 
+from coldindex.covariates import region_slug, with_class_probabilities, with_region_columns
 from coldindex.domain import make_grid
 from coldindex.io.writers import fields_dataset, survey_times
-from coldindex.covariates import region_slug, with_class_probabilities, with_region_columns
 from coldindex.report.figures import maps_figure, stop_year_figure
 from coldindex.report.page import (
     Section,
