@@ -202,11 +202,14 @@ def run_ratios(args: argparse.Namespace) -> None:
 
         a = pd.read_csv(work / "peer.csv")
         b = pd.read_csv(work / "sims0" / "indices.csv")
-        d_mean = float(np.max(np.abs(a["bottom_mean_c"] - b["bottom_mean_c"])))
-        d_area = float(np.max(np.abs(a["below_0c_km2"] - b["below_0c_km2"])
-                              / np.maximum(a["below_0c_km2"], 1.0)))
-        print(f"agreement with the peer: mean within {d_mean:.1e} °C, area below 0 °C within "
-              f"{d_area:.1e} (relative)")
+        same = a.merge(b, on="year", suffixes=("", "_c"))
+        same = same[same["n_casts"] == same["n_casts_c"]]  # years without spatial outliers
+        d_mean = float(np.max(np.abs(same["bottom_mean_c"] - same["bottom_mean_c_c"])))
+        d_area = float(np.max(np.abs(same["below_0c_km2"] - same["below_0c_km2_c"])
+                              / np.maximum(same["below_0c_km2"], 1.0)))
+        print(f"agreement with the peer in the {len(same)} years where coldindex flagged no "
+              f"spatial outlier: mean within {d_mean:.1e} °C, area below 0 °C within "
+              f"{d_area:.1e} (relative; the casts' lon/lat are rounded to 1e-5 degrees)")
     finally:
         if not args.keep:
             shutil.rmtree(work, ignore_errors=True)
