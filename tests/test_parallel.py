@@ -12,7 +12,7 @@ from threadpoolctl import threadpool_info
 
 from coldindex.config import IndexOptions
 from coldindex.domain import make_grid
-from coldindex.errors import InputError, TooFewDataError
+from coldindex.errors import ConfigError, InputError, TooFewDataError
 from coldindex.indices import IndexResult, compute_indices
 from coldindex.parallel import BLAS_THREADS, map_years
 from coldindex.progress import ProgressClock, ProgressEvent, years_only
@@ -182,3 +182,9 @@ def test_progress_clock_gives_elapsed_and_remaining_time():
     assert s.remaining_s == 0.0 and s.label == "mapping survey years"
     with pytest.raises(ValueError, match="stage"):
         ProgressEvent("kriging", 0, 1)
+
+
+def test_a_scheduler_address_that_cannot_work_is_refused_naming_the_option():
+    pytest.importorskip("distributed")
+    with pytest.raises(ConfigError, match="^--scheduler: no dask scheduler answered at foo://x"):
+        map_years(_fails_on_odd, [2], scheduler="foo://x", shared="f")
