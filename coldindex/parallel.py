@@ -80,7 +80,8 @@ def warm_up(workers: int = 2, scheduler: str | None = None) -> None:
     will use ``workers > 1`` local processes; it returns at once. Without it the first
     :meth:`YearPool.map` waits for the server's imports (about a second or two).
     """
-    if workers > 1 and scheduler is None and start_method() == "forkserver":
+    if (workers > 1 and scheduler is None and start_method() == "forkserver"
+            and not mp.current_process().daemon):
         from multiprocessing import forkserver
 
         mp.get_context("forkserver").set_forkserver_preload(PRELOAD)
@@ -212,7 +213,8 @@ class YearPool:
             return []
         if self.scheduler is not None:
             return self._map_dask(func, items, on_done)
-        if self.workers == 1 or len(items) == 1:
+        if self.workers == 1 or len(items) == 1 or mp.current_process().daemon:
+            # (a daemonic process may not start processes: it runs its years itself)
             out = []
             for i, item in enumerate(items):
                 res = run_pinned(func, self.shared, item, self.blas_threads)

@@ -188,3 +188,22 @@ def test_a_scheduler_address_that_cannot_work_is_refused_naming_the_option():
     pytest.importorskip("distributed")
     with pytest.raises(ConfigError, match="^--scheduler: no dask scheduler answered at foo://x"):
         map_years(_fails_on_odd, [2], scheduler="foo://x", shared="f")
+
+
+def _years_in_a_daemon(queue) -> None:
+    try:
+        queue.put(map_years(_fails_on_odd, [2, 4], workers=2, shared="f"))
+    except BaseException as exc:  # reported to the test, not lost with the process
+        queue.put(repr(exc))
+
+
+def test_a_daemonic_process_runs_its_years_itself():
+    # A daemonic process may not start processes (e.g. coldindex inside a worker pool).
+    import multiprocessing as mp
+
+    ctx = mp.get_context("spawn")
+    queue = ctx.Queue()
+    proc = ctx.Process(target=_years_in_a_daemon, args=(queue,), daemon=True)
+    proc.start()
+    assert queue.get(timeout=120) == [20, 40]
+    proc.join(timeout=30)
