@@ -191,7 +191,9 @@ def run_fine(grid_km: float, years: int) -> dict:
         casts = casts[casts["year"].isin(keep)]
     casts = casts.reset_index(drop=True)
     casts["row"] = np.arange(1, len(casts) + 1)
-    casts["doy"] = pd.to_datetime(casts["date"]).dt.dayofyear.astype(float)
+    casts["doy"] = pd.to_datetime(casts["date"]).dt.day_of_year.astype(float)
+    # The sample straddles 180 degrees; its bathymetry's axis runs 174..187 degrees east.
+    casts["lon"] = np.where(casts["lon"] < 0, casts["lon"] + 360.0, casts["lon"])
     t = time.perf_counter()
     grid = make_grid(domain, grid_km)
     t_grid = time.perf_counter() - t

@@ -522,6 +522,29 @@ def fit_year(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | N
     return fit_variogram(xy[sub], z[sub], family, d, method=method)
 
 
+def working_memory_bytes(n_casts: int, n_cells: int, n_years: int, sims: int,
+                         dense_threshold: int = DENSE_THRESHOLD,
+                         blocked_values: int = BLOCKED_VALUES) -> int:
+    """Working memory of the index computation, estimated before it starts. [bytes]
+
+    For the year with the most casts (n) on m active cells, Y years and S simulations,
+    in float64: exact kriging holds four n x n matrices, the cell-to-cast covariances
+    (n x m, or a block of 4,096 cells when the simulations run in blocks) and, on the
+    serial path, S x m realizations; local kriging holds the fit's subsample matrices
+    (4 s^2), the Vecchia distances (n x 31 x 30) and a neighbourhood per tile; blocked
+    simulations hold a batch of 50 unconditional fields on a lattice of about 2 m
+    nodes. Every path keeps the mapped estimate and SD of every year (2 Y m).
+    """
+    n, m, y, s = int(n_casts), int(n_cells), int(n_years), int(sims)
+    if n > dense_threshold:
+        sub = min(n, FIT_SUBSAMPLE)
+        return 8 * (4 * sub * sub + n * (VECCHIA_NEIGHBOURS + 1) * VECCHIA_NEIGHBOURS
+                    + 4 * 600 * 600 + 2 * y * m + 100 * m)
+    if m * max(s, n) > blocked_values:
+        return 8 * (4 * n * n + 2 * n * _TILE_TARGETS + 2 * y * m + 100 * m)
+    return 8 * (4 * n * n + n * m + (2 * y + s) * m)
+
+
 # --------------------------------------------------------------------------------------
 # Conditional simulations in blocks of cells
 

@@ -191,3 +191,15 @@ def test_local_kriging_refuses_what_it_cannot_do():
         dense.LocalKriging(xy, z, vg, neighbours=2)
     with pytest.raises(ValueError, match="weight"):
         dense.LocalKriging(xy, z, vg).predict(xy[:3], return_weights=True)
+
+
+def test_memory_estimate_follows_the_path_the_year_takes():
+    # The serial exact path keeps the estimate the pipeline used before: 8 (4n² + nm + (2Y+S)m).
+    assert dense.working_memory_bytes(300, 5000, 30, 200) == 8 * (
+        4 * 300**2 + 300 * 5000 + (2 * 30 + 200) * 5000)
+    # 20,000 casts: local kriging stays far below the 12.8 GB of four exact n x n matrices.
+    assert dense.working_memory_bytes(20000, 5537, 1, 200) < 1024**3
+    assert dense.working_memory_bytes(20000, 5537, 1, 200, dense_threshold=10**9) > 12e9
+    # A fine grid: blocked simulations drop the S x m realizations.
+    fine = dense.working_memory_bytes(168, 469847, 36, 200)
+    assert fine < 8 * (200 * 469847)
