@@ -189,7 +189,9 @@ def run_fine(grid_km: float, years: int) -> dict:
     keep = sorted(casts["year"].unique())[-years:] if years else None
     if keep is not None:
         casts = casts[casts["year"].isin(keep)]
-    casts = casts.reset_index(drop=True)
+    # What quality control would keep: inside the domain, with a bottom temperature.
+    inside = domain.contains(casts["lon"].to_numpy(float), casts["lat"].to_numpy(float))
+    casts = casts[inside & casts["bottom_c"].notna()].reset_index(drop=True)
     casts["row"] = np.arange(1, len(casts) + 1)
     casts["doy"] = pd.to_datetime(casts["date"]).dt.day_of_year.astype(float)
     # The sample straddles 180 degrees; its bathymetry's axis runs 174..187 degrees east.
