@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import os
+import signal
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -207,3 +211,42 @@ def test_a_daemonic_process_runs_its_years_itself():
     proc.start()
     assert queue.get(timeout=120) == [20, 40]
     proc.join(timeout=30)
+
+
+def _pid_or_sleep(shared: None, item: int) -> int:
+    if item < 2:
+        return os.getpid()
+    time.sleep(300)  # a long year, interrupted
+    return -1
+
+
+_INTERRUPTED_RUN = """
+import signal, sys
+signal.signal(signal.SIGINT, signal.default_int_handler)  # even when started in background
+from coldindex.parallel import map_years
+from tests.test_parallel import _pid_or_sleep
+try:
+    map_years(_pid_or_sleep, [0, 1, 2, 3], workers=2, on_done=lambda i, r: print(r, flush=True))
+except KeyboardInterrupt:
+    print("interrupted", flush=True)
+    sys.exit(130)
+"""
+
+
+def test_ctrl_c_stops_the_workers_and_leaves_no_process_behind():
+    psutil = pytest.importorskip("psutil")
+    root = Path(__file__).resolve().parents[1]
+    proc = subprocess.Popen([sys.executable, "-c", _INTERRUPTED_RUN], cwd=root, text=True,
+                            stdout=subprocess.PIPE)
+    try:
+        assert proc.stdout is not None
+        proc.stdout.readline(), proc.stdout.readline()  # two years done: the pool runs
+        children = psutil.Process(proc.pid).children(recursive=True)
+        assert children
+        proc.send_signal(signal.SIGINT)
+        out, _ = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+    assert proc.returncode == 130 and "interrupted" in out
+    _, alive = psutil.wait_procs(children, timeout=30)
+    assert not alive
