@@ -31,11 +31,13 @@ from coldindex.errors import InputError, TooFewDataError
 from coldindex.fitting import Fit, draw_variograms, with_posterior
 from coldindex.interpolate import (
     FAMILIES,
+    DrawCache,
     Kriging,
     Variogram,
     conditional_realizations,
     idw_loo,
     idw_predict,
+    share_of,
     weighted_summaries,
 )
 from coldindex.parallel import YearPool, warm_up
@@ -939,12 +941,19 @@ def simulate_summaries(kr: Kriging, fit: Fit, xy: FloatArray, z: FloatArray,
     rw = np.zeros((0, len(cell_area))) if region_w is None else np.asarray(region_w, float)
     means, areas, methods, coarse = [], [], set(), set()
     rmeans, rareas = [], []
+    # Draws repeat points of the posterior grid: what they share is computed once.
+    keys = [(vg.family, vg.len_scale, share_of(vg)) for vg, c in zip(draws, counts, strict=True)
+            if c > 0]
+    cache = DrawCache()
     for vg, c in zip(draws, counts, strict=True):
         if c == 0:
             continue
+        keys.pop(0)
+        cache.keep = set(keys)
         kd = kr if vg == kr.vg else Kriging(xy, z, vg, drift)
         real = conditional_realizations(kd, grid.x, grid.y, grid.mask, cell_area, int(c), rng,
-                                        drift_cells, cell_dist=dist)
+                                        drift_cells, cell_dist=dist, cache=cache)
+        cache.prune()
         # The domain and the regions in one pass over the realizations (domain first).
         w = np.vstack([real.node_area[None, :],
                        node_weights(rw, real.node_of_cell, len(real.node_area))])

@@ -39,7 +39,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
@@ -667,6 +667,52 @@ def _cast_stencils(xy: FloatArray, gx: FloatArray, gy: FloatArray, vg: Variogram
     return nodes, W, np.sqrt(var)
 
 
+@dataclass
+class DrawCache:
+    """Pieces of one year's simulations that several variogram parameter draws share.
+
+    Draws from the posterior grid repeat its points: the same length scale (and smooth
+    share) with another total variance. What depends on the length scale alone is kept
+    at unit sill and scaled (the embedding's square-root spectrum and the stencils'
+    residual SD by ``sqrt(sill)``, the exact simulation's factor by ``sqrt(sill)`` and
+    its covariances by ``sill``): the same realizations to rounding, computed once.
+
+    Attributes
+    ----------
+    keep
+        ``(family, len_scale, share)`` of the draws still to come; pieces of other keys
+        are dropped (set by the caller before each draw).
+    max_factors
+        Most exact-simulation factors held at once (each is (k + n)² doubles).
+    """
+
+    keep: set[tuple[str, float, float]] = field(default_factory=set)
+    max_factors: int = 3
+    embeddings: dict[tuple, Embedding] = field(default_factory=dict)
+    stencils: dict[tuple, tuple[NDArray[np.int_], FloatArray, FloatArray]] = field(
+        default_factory=dict)
+    factors: dict[tuple, tuple[FloatArray, FloatArray]] = field(default_factory=dict)
+    exact_layout: tuple | None = None
+
+    def _lens(self) -> set[tuple[str, float]]:
+        return {(fam, ln) for fam, ln, _ in self.keep}
+
+    def prune(self) -> None:
+        """Drop the pieces no later draw uses."""
+        lens = self._lens()
+        for d in (self.embeddings, self.stencils):
+            for key in [k for k in d if k[:2] not in lens]:
+                del d[key]
+        for key in [k for k in self.factors if k not in self.keep]:
+            del self.factors[key]
+
+
+def share_of(vg: Variogram) -> float:
+    """Share of the smooth process in the total variance, ``sill / (sill + nugget)``."""
+    total = vg.sill + vg.nugget
+    return vg.sill / total if total > 0 else 0.0
+
+
 #: Active cells per block of the conditioning pass (cells x casts covariances of a block
 #: stay within a few MB).
 _COND_CELLS = 1024
@@ -708,7 +754,8 @@ def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayL
                              rng: np.random.Generator, drift_cells: ArrayLike | None = None,
                              cell_dist: FloatArray | None = None, batch: int = 50,
                              pad_cap: float = 2.5, clip_tolerance: float = CLIP_TOLERANCE,
-                             exact_max_nodes: int = EXACT_MAX_NODES) -> Realizations:
+                             exact_max_nodes: int = EXACT_MAX_NODES,
+                             cache: DrawCache | None = None) -> Realizations:
     """Conditional realizations of the smooth process over the active grid cells.
 
     Each realization is ``estimate(data) + S - estimate(S_casts + e)``: an
@@ -757,6 +804,9 @@ def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayL
         Largest clipped share of eigenvalue mass accepted from the embedding.
     exact_max_nodes
         Most nodes of the exact simulation.
+    cache
+        Pieces shared with other parameter draws of the same year (:class:`DrawCache`);
+        None computes everything for this variogram.
 
     Returns
     -------
@@ -786,10 +836,33 @@ def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayL
     half = (r - 1) // 2
     fgx = gx[0] + fine * (np.arange(len(gx) * r) - half)
     fgy = gy[0] + fine * (np.arange(len(gy) * r) - half)
-    emb = circulant_embedding((len(fgy), len(fgx)), fine, vg, pad_cap=pad_cap)
+    lens = (vg.family, vg.len_scale)
+    unit = Variogram(vg.family, 1.0, vg.len_scale, 0.0)
+    root_scale = float(np.sqrt(vg.sill))
+    if cache is None:
+        emb = circulant_embedding((len(fgy), len(fgx)), fine, vg, pad_cap=pad_cap)
+    else:
+        ekey = (*lens, len(fgy), len(fgx), fine, pad_cap)
+        emb1 = cache.embeddings.get(ekey)
+        if emb1 is None:
+            emb1 = circulant_embedding((len(fgy), len(fgx)), fine, unit, pad_cap=pad_cap)
+            if lens in cache._lens():
+                cache.embeddings[ekey] = emb1
+        emb = Embedding(root=emb1.root * root_scale, shape=emb1.shape,
+                        clipped_share=emb1.clipped_share, pad_factor=emb1.pad_factor)
     out: FloatArray
     if emb.clipped_share <= clip_tolerance:
-        stencil, sk_w, sk_sd = _cast_stencils(kriging.xy, fgx, fgy, vg)
+        if cache is None:
+            stencil, sk_w, sk_sd = _cast_stencils(kriging.xy, fgx, fgy, vg)
+        else:
+            skey = (*lens, r)
+            pieces = cache.stencils.get(skey)
+            if pieces is None:
+                pieces = _cast_stencils(kriging.xy, fgx, fgy, unit)
+                if lens in cache._lens():
+                    cache.stencils[skey] = pieces
+            stencil, sk_w, sk_sd1 = pieces
+            sk_sd = sk_sd1 * root_scale
         noise_sd = np.sqrt(sk_sd**2 + vg.nugget)
         iy, ix = np.nonzero(mask)
         flat_cells = (iy * r + half) * len(fgx) + ix * r + half
@@ -809,25 +882,50 @@ def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayL
         return Realizations(values=out, node_of_cell=None, node_area=area, method="circulant",
                             node_km=fine, clipped_share=emb.clipped_share)
     # Exact fallback on the cells, or on blocks of cells.
-    xx, yy = np.meshgrid(gx, gy)
-    cxy = np.column_stack([xx[mask], yy[mask]])
-    node, f = _coarse_nodes(mask, exact_max_nodes)
-    k = int(node.max()) + 1
-    node_area = np.bincount(node, weights=area, minlength=k).astype(float)
-    nxy = np.column_stack([np.bincount(node, weights=area * cxy[:, j], minlength=k)
-                           for j in range(2)]) / node_area[:, None]
-    fn = np.column_stack([np.bincount(node, weights=area * f0[:, j], minlength=k)
-                          for j in range(f0.shape[1])]) / node_area[:, None]
-    P = np.vstack([nxy, kriging.xy])
-    Kj = vg.covariance(cdist(P, P))
-    Kj[np.diag_indices(len(P))] += 1e-10 * (vg.sill + vg.nugget) + 1e-12
-    Lj = sla.cholesky(Kj, lower=True, check_finite=False)
-    C = Kj[:k, k:]
+    layout = cache.exact_layout if cache is not None else None
+    if layout is None or layout[0] != exact_max_nodes:
+        xx, yy = np.meshgrid(gx, gy)
+        cxy = np.column_stack([xx[mask], yy[mask]])
+        node, f = _coarse_nodes(mask, exact_max_nodes)
+        k = int(node.max()) + 1
+        node_area = np.bincount(node, weights=area, minlength=k).astype(float)
+        nxy = np.column_stack([np.bincount(node, weights=area * cxy[:, j], minlength=k)
+                               for j in range(2)]) / node_area[:, None]
+        fn = np.column_stack([np.bincount(node, weights=area * f0[:, j], minlength=k)
+                              for j in range(f0.shape[1])]) / node_area[:, None]
+        P = np.vstack([nxy, kriging.xy])
+        layout = (exact_max_nodes, node, f, k, node_area, fn, cdist(P, P))
+        if cache is not None:
+            cache.exact_layout = layout
+    _, node, f, k, node_area, fn, DP = layout
+    jitter = 1e-10 * (vg.sill + vg.nugget) + 1e-12
+    if cache is None:
+        Kj = vg.covariance(DP)
+        Kj[np.diag_indices(len(DP))] += jitter
+        Lj = sla.cholesky(Kj, lower=True, check_finite=False)
+        C = Kj[:k, k:]
+        s_scale = 1.0
+    else:
+        fkey = (*lens, share_of(vg))
+        pair = cache.factors.get(fkey)
+        if pair is None:
+            # Unit sill: the factor scales by sqrt(sill) and the covariances by sill.
+            R1 = covariance_blocked(vg.family, DP, vg.len_scale, 1.0)
+            R1[np.diag_indices(len(DP))] += jitter / vg.sill
+            pair = (sla.cholesky(R1, lower=True, check_finite=False, overwrite_a=True),
+                    covariance_blocked(vg.family, DP[:k, k:], vg.len_scale, 1.0))
+            if fkey in cache.keep and len(cache.factors) < cache.max_factors:
+                cache.factors[fkey] = pair
+        Lj, C1 = pair
+        C = C1 * vg.sill
+        s_scale = root_scale
     est = fn @ kriging.beta + C @ kriging.dual
     out = np.empty((n, k))
     for start in range(0, n, batch):
         b = min(batch, n - start)
-        S = (Lj @ rng.standard_normal((len(P), b))).T  # (b, k + n_casts)
+        S = (Lj @ rng.standard_normal((len(DP), b))).T  # (b, k + n_casts)
+        if s_scale != 1.0:
+            S *= s_scale
         X = (S[:, k:] + sd_nug * rng.standard_normal((b, n_casts))).T
         block = S[:, :k] + est[None, :]
         block -= (C @ (Q @ X) + fn @ (R.T @ X)).T

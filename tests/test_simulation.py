@@ -7,6 +7,7 @@ from scipy.spatial.distance import cdist
 
 from coldindex.indices import area_below
 from coldindex.interpolate import (
+    DrawCache,
     Kriging,
     Variogram,
     _cast_stencils,
@@ -14,6 +15,7 @@ from coldindex.interpolate import (
     circulant_embedding,
     conditional_realizations,
     refinement,
+    share_of,
     unconditional_fields,
     weighted_summaries,
 )
@@ -226,3 +228,37 @@ def test_embedding_spectrum_equals_the_complex_fft(shape):
     c = Variogram("matern", 1.0, 30.0, 0.0).covariance(np.hypot(ky[:, None], kx[None, :]))
     ref = scipy.fft.fft2(c).real
     np.testing.assert_allclose(_even_spectrum(c), ref, atol=1e-13 * np.abs(ref).max())
+
+
+def test_pieces_shared_by_repeated_draws_change_nothing():
+    # Parameter draws repeat a length scale and smooth share with another total variance:
+    # the cached unit-sill embedding, stencils and exact factor, scaled, give the
+    # realizations computed from scratch (circulant and exact paths), to 1e-10.
+    rng = np.random.default_rng(31)
+    xy = rng.uniform([0, 0], [NX * CELL, NY * CELL], size=(30, 2))
+    z = rng.normal(1.0, 0.5, 30)
+    mask = np.ones((NY, NX), bool)
+    mask[:3, :7] = False
+    area = np.full(mask.sum(), CELL**2)
+    draws = [Variogram("exponential", 0.6, 20.0, 0.06),
+             Variogram("exponential", 1.0, 400.0, 0.1),  # exact
+             Variogram("exponential", 0.3, 20.0, 0.03),  # the first, half the variance
+             Variogram("exponential", 1.0, 15.0, 0.2),
+             Variogram("exponential", 2.0, 400.0, 0.2),  # the exact one, twice
+             Variogram("exponential", 0.9, 20.0, 0.09)]
+    keys = [(vg.family, vg.len_scale, share_of(vg)) for vg in draws]
+    cache = DrawCache()
+    methods = []
+    for i, vg in enumerate(draws):
+        cache.keep = set(keys[i + 1:])
+        kr = Kriging(xy, z, vg)
+        got = conditional_realizations(kr, GX, GY, mask, area, 12, np.random.default_rng(i),
+                                       cache=cache, exact_max_nodes=400)
+        cache.prune()
+        ref = conditional_realizations(kr, GX, GY, mask, area, 12, np.random.default_rng(i),
+                                       exact_max_nodes=400)
+        methods.append(got.method)
+        np.testing.assert_allclose(got.values, ref.values, atol=1e-10)
+        np.testing.assert_allclose(got.node_area, ref.node_area)
+    assert methods.count("exact") == 2 and methods.count("circulant") == 4
+    assert not cache.embeddings and not cache.stencils and not cache.factors  # all dropped
