@@ -198,14 +198,13 @@ def _show_progress(flag: bool | None) -> bool:
 
 
 def _workers(n: int) -> int:
-    import os
-
     if n < 0:
         from coldindex.errors import ConfigError
 
         raise ConfigError(f"--workers needs to be 0 (one a core) or more, got: {n}.")
-    return n or (len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
-                 else os.cpu_count() or 1)
+    from coldindex.parallel import default_workers
+
+    return n or default_workers()
 
 
 def _inputs(**named: Path | None) -> None:
@@ -658,7 +657,7 @@ def project(
     opts = C.from_flags(C.ProjectConfig, column=value, adjust=adjust, calibration=calibration,
                         short_calibration=short_calibration, window=window, p_stop=p_stop,
                         units=units)
-    _inputs(observed=observed, cuts=cuts, domain=domain, fields=fields,
+    _inputs(observed=observed, cuts=cuts, domain=domain,
             **{f"TRAJECTORIES[{k}]": p for k, p in enumerate(trajectories)})
     from coldindex.io.readers import check_netcdf, read_domain
     from coldindex.pipeline import GriddedSource, read_cuts_for, run_project

@@ -775,10 +775,11 @@ def _sentence(exc: ValidationError, cls: type[_Table], table: str, flag: bool) -
                            f"{shown}.")
     words = _TYPE_WORDS.get(err["type"], err["msg"].lower())
     field = cls.model_fields.get(key)
-    if field is not None and "tuple" in str(field.annotation) and len(loc) == 1:
+    nested = any(isinstance(x, int) for x in err["loc"])  # an item of a list
+    if field is not None and "tuple" in str(field.annotation) and not nested:
         inner = "names" if "str" in str(field.annotation) else "numbers"
         words = f"a list of {inner}"
-    elif len(loc) > 1:
+    elif nested:
         words = ("a list of names" if err["type"] == "string_type" else
                  "a list of finite numbers" if err["type"] == "finite_number"
                  else "a list of numbers")

@@ -39,7 +39,8 @@ from coldindex.indices import IndexResult, compute_indices
 from coldindex.interpolate import FAMILIES
 from coldindex.io import files as io_files
 from coldindex.io import readers, writers
-from coldindex.progress import ProgressEvent
+from coldindex.parallel import warm_up
+from coldindex.progress import ProgressEvent, emit
 from coldindex.qc import QCResult, run_qc, year_hashes
 from coldindex.regions import RegionWeights
 from coldindex.schema import CASTS_FROM_PROFILES, HINDCAST
@@ -79,15 +80,17 @@ INDEX_OUTPUTS = ("qc.csv", "indices.csv", "fields.nc", DOMAIN_NAME, FROZEN_NAME,
 MEMORY_CAP_BYTES = 2 * 1024**3  # Common practice, no single source: a laptop-sized budget
 
 
-def kriging_memory_bytes(n_casts: int, n_cells: int, n_years: int, sims: int) -> int:
+def kriging_memory_bytes(n_casts: int, n_cells: int, n_years: int, sims: int,
+                         workers: int = 1) -> int:
     """Working memory of the index computation, estimated before it starts. [bytes]
 
-    ``8 * (4 n^2 + n m + (2 Y + S) m)``: four n x n kriging matrices for the year with
-    the most casts (n), the cell-to-cast distances (n x m active cells), the mapped
-    estimate and SD of every year (Y) and one year's simulations (S); float64.
+    ``8 * (w (4 n^2 + n m + S m) + 2 Y m)``: in each of ``w`` workers, four n x n kriging
+    matrices for the year with the most casts (n), the cell-to-cast distances (n x m
+    active cells) and one year's simulations (S); the mapped estimate and SD of every
+    year (Y) once; float64.
     """
-    n, m = int(n_casts), int(n_cells)
-    return 8 * (4 * n * n + n * m + (2 * int(n_years) + int(sims)) * m)
+    n, m, w = int(n_casts), int(n_cells), max(int(workers), 1)
+    return 8 * (w * (4 * n * n + n * m + int(sims) * m) + 2 * int(n_years) * m)
 
 
 MAX_CELLS = 2_000_000  # cap on grid cells, checked before the grid is laid (no source)
@@ -98,21 +101,23 @@ def _check_grid_size(domain: Domain, options: IndexOptions) -> None:
     if not cells <= MAX_CELLS:
         raise InputError(f"The domain ({domain.area_km2:.3g} km2) holds about {cells:.3g} grid "
                          f"cells of {options.grid_km:g} km, above the cap of {MAX_CELLS:,}; give "
-                         "the survey area as the domain or a coarser grid (--grid-km, "
-                         "index.grid_km).")
+                         "the survey area as the domain or a coarser grid ({option}).",
+                         option=("index", "grid_km"))
 
 
-def _check_memory(casts: pd.DataFrame, grid: Grid, options: IndexOptions) -> None:
+def _check_memory(casts: pd.DataFrame, grid: Grid, options: IndexOptions,
+                  workers: int = 1) -> None:
     counts = casts.groupby("year").size()
     n, year = int(counts.max()), int(counts.idxmax())
     m = int(grid.mask.sum())
-    need = kriging_memory_bytes(n, m, len(counts), options.sims)
+    need = kriging_memory_bytes(n, m, len(counts), options.sims, workers)
     if need > MEMORY_CAP_BYTES:
         raise InputError(
-            f"Mapping {year} ({n} casts) on {m} grid cells of {options.grid_km:g} km needs "
-            f"about {need / 1024**3:.1f} GB, above the {MEMORY_CAP_BYTES / 1024**3:.0f} GB "
-            "cap; use a coarser grid (--grid-km, index.grid_km), fewer simulations, or thin "
-            "the casts of that year.")
+            f"Mapping {year} ({n} casts) on {m} grid cells of {options.grid_km:g} km with "
+            f"{workers} worker(s) needs about {need / 1024**3:.1f} GB, above the "
+            f"{MEMORY_CAP_BYTES / 1024**3:.0f} GB cap; use a coarser grid ({{option}}), fewer "
+            "simulations or workers, or thin the casts of that year.",
+            option=("index", "grid_km"))
 
 
 def region_weights_for(domain: Domain, grid: Grid, options: IndexOptions,
@@ -316,6 +321,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
         out, "index", INDEX_OUTPUTS + ((PROFILE_CASTS_NAME,) if profiles else ()),
         [casts_path, domain_path, bathymetry_path])
     frozen = _frozen(out)
+    warm_up(workers, scheduler)  # the worker processes start while the casts are read
     check = run_check(casts_path, mapping, domain_path, options, previous_out=out, derive=True,
                       profiles=profiles, bathymetry_path=bathymetry_path, read=read)
     assert check.domain is not None
@@ -324,7 +330,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
     bathy = readers.read_bathymetry(bathymetry_path) if bathymetry_path else None
     _check_grid_size(check.domain, options)
     grid = make_grid(check.domain, options.grid_km)
-    _check_memory(check.qc.casts, grid, options)
+    _check_memory(check.qc.casts, grid, options, workers if scheduler is None else 1)
     frozen_family = frozen.get("variogram_family") if options.variogram == "auto" else None
     notes = []
     if frozen_family:
@@ -353,6 +359,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
                                           [casts_path, domain_path, bathymetry_path,
                                            regions_path], "--out")
         outputs.names.append(REGIONS_NAME)
+    emit(progress, "writing", 0, 1)
     with outputs as stage:
         written, frozen_out = _write_index_outputs(stage.dir, check, result, grid, options)
         provenance = {
@@ -365,6 +372,7 @@ def run_index(casts_path: Path, out: Path, options: IndexOptions,
             "outputs": {p.name: writers.sha256_file(p) for p in written},
         }
         writers.write_json(provenance, stage.path("provenance.json"))
+    emit(progress, "writing", 1, 1)
     return IndexRun(check=check, result=result, written=stage.written, notes=notes)
 
 
@@ -557,6 +565,9 @@ def index_release_stage(cfg: Config, rel: Path, prev: Path | None,
     casts_path = cfg.inputs.profiles if from_profiles else cfg.inputs.casts
     assert casts_path is not None
     notes: list[str] = []
+    workers = getattr(execution, "workers", 1)
+    scheduler = getattr(execution, "scheduler", None)
+    warm_up(workers, scheduler)  # the worker processes start while the casts are read
     check = run_check(casts_path, cfg.profile_columns if from_profiles else cfg.columns,
                       cfg.inputs.domain, opts, previous_out=prev, derive=True,
                       profiles=cfg.profiles if from_profiles else None,
@@ -570,7 +581,7 @@ def index_release_stage(cfg: Config, rel: Path, prev: Path | None,
         notes.append(f"variogram family {family} reused from {prev.name if prev else ''}")
     _check_grid_size(check.domain, opts)
     grid = make_grid(check.domain, opts.grid_km)
-    _check_memory(check.qc.casts, grid, opts)
+    _check_memory(check.qc.casts, grid, opts, workers if scheduler is None else 1)
     bathy = readers.read_bathymetry(cfg.inputs.bathymetry) if cfg.inputs.bathymetry else None
     frozen_spacing = frozen_prev.get("reference_spacing_km")
     if frozen_prev and frozen_spacing is None:
@@ -584,8 +595,7 @@ def index_release_stage(cfg: Config, rel: Path, prev: Path | None,
                           frozen_spacing_km=frozen_spacing, regions=regions,
                           frozen_reference_day=frozen_prev.get("reference_day"),
                           progress=getattr(execution, "on_progress", None),
-                          workers=getattr(execution, "workers", 1),
-                          scheduler=getattr(execution, "scheduler", None))
+                          workers=workers, scheduler=scheduler)
     written, frozen = _write_index_outputs(rel, check, res, grid, opts)
     return IndexStage(check, res, grid, check.domain, frozen, written, notes)
 

@@ -71,26 +71,6 @@ def emit(progress: ProgressCallback | None, stage: str, done: int, total: int,
         progress(ProgressEvent(stage, done, total, year))
 
 
-def years_only(on_year: Callable[[int], None]) -> ProgressCallback:
-    """Adapt a callback of the older protocol (called with each finished year).
-
-    Parameters
-    ----------
-    on_year
-        Called with the year of every ``years`` event that finishes one.
-
-    Returns
-    -------
-    callable
-        A :data:`ProgressCallback` that ignores every other event.
-    """
-    def forward(event: ProgressEvent) -> None:
-        if event.stage == "years" and event.year is not None and event.done > 0:
-            on_year(event.year)
-
-    return forward
-
-
 @dataclass(frozen=True)
 class ProgressStatus:
     """What a renderer shows for the latest event.

@@ -19,7 +19,7 @@ from coldindex.domain import make_grid
 from coldindex.errors import ConfigError, InputError, TooFewDataError
 from coldindex.indices import IndexResult, compute_indices
 from coldindex.parallel import BLAS_THREADS, map_years
-from coldindex.progress import ProgressClock, ProgressEvent, years_only
+from coldindex.progress import ProgressClock, ProgressEvent
 from coldindex.qc import run_qc
 from coldindex.regions import RegionWeights
 from tests.conftest import synthetic_casts
@@ -167,10 +167,6 @@ def test_progress_counts_every_year_up_to_the_total(survey, box_domain):
     assert [e.done for e in family] == list(range(4)) and family[0].total == 3
     assert [e.done for e in years] == list(range(5)) and {e.total for e in years} == {4}
     assert sorted(e.year for e in years[1:]) == res.years == list(YEARS)
-    seen: list[int] = []
-    for e in events:  # the adapter for a callback that wants finished years only
-        years_only(seen.append)(e)
-    assert sorted(seen) == list(YEARS)
 
 
 def test_progress_clock_gives_elapsed_and_remaining_time():

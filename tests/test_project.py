@@ -8,7 +8,7 @@ from typer.testing import CliRunner
 
 from coldindex.classify import Cuts
 from coldindex.cli import app
-from coldindex.errors import InputError
+from coldindex.errors import InputError, TooFewDataError
 from coldindex.project import (
     ProjectOptions,
     adjust_series,
@@ -320,8 +320,8 @@ def test_calibration_guard_refuses_short_overlaps_unless_accepted():
     t = traj([("M", "s", "r1", y, 0.02 * (y - 2014) + rng.normal(0, 0.3)) for y in years])
     oy = np.arange(1990, 2021)  # overlap 2014-2020: 7 years
     obs = rng.normal(0.5, 0.3, len(oy))
-    with pytest.raises(InputError, match=r"overlap in 7 years \(2014-2020\).*at least 20.*"
-                       r"--short-calibration"):
+    with pytest.raises(TooFewDataError, match=r"overlap in 7 years \(2014-2020\).*at least "
+                       r"20.*project.calibration A-B with project.short_calibration"):
         project(t, oy, obs, CUTS, ProjectOptions(adjust="qdm"))
     with pytest.raises(InputError,
                        match="project.short_calibration needs an explicit calibration period"):
