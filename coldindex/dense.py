@@ -450,7 +450,8 @@ class LocalKriging:
         err = np.empty(n)
         var = np.empty(n)
         resid = self.z - self.F @ self.beta
-        for t, nb in self.geometry.tiling(self.xy):
+        for t, nb0 in self.geometry.tiling(self.xy):
+            nb = np.union1d(nb0, t)  # a cast is its own nearest, unless many share its place
             L = self._system(nb)
             a = sla.cho_solve((L, True), resid[nb], check_finite=False)
             pos = np.searchsorted(nb, t)
