@@ -542,13 +542,13 @@ def shifts(
                       f"(median over {null_window}-year windows, bias-corrected), {boot} "
                       "replicates.")
     t = Table(title=escape(f"Regime shifts in {value}"), title_justify="left")
-    for col in ("method", "first year", "mean before", "mean after", "t", "p", "survives",
-                "provisional"):
+    for col in ("method", "first year", "mean before", "mean after", "t local", "t record",
+                "p", "survives", "provisional"):
         t.add_column(col, justify="right")
     survives = set(res.surviving().index)
     for i, r in res.shifts.iterrows():
         t.add_row(r["method"], str(r["year"]), f"{r['mean_before']:.4g}",
-                  f"{r['mean_after']:.4g}", f"{r['t_stat']:.2f}",
+                  f"{r['mean_after']:.4g}", f"{r['t_stat']:.2f}", f"{r['t_record']:.2f}",
                   "-" if r["p_value"] != r["p_value"] else f"{r['p_value']:.3f}",
                   "[bold]yes[/]" if i in survives else "no",
                   "yes" if r["provisional"] else "")

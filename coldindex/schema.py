@@ -526,13 +526,16 @@ SHIFTS = Table(
         Column("year", "-", "First year of the new regime.", "int"),
         Column("mean_before", "as input", "Mean of the regime before the shift.", "float"),
         Column("mean_after", "as input", "Mean of the regime after the shift.", "float"),
-        Column("t_stat", "1", "Shift statistic: two-sample t of the regimes either side, "
-               "abs(mean_after - mean_before) / (s sqrt(1/n_before' + 1/n_after')), with s the "
-               "pooled within-regime SD and n' = n (1 - rho) / (1 + rho) the regimes' effective "
-               "sizes under the series' lag-1 autocorrelation rho.", "float"),
-        Column("p_value", "1", "Family-wise p-value: share of red-noise null series (same "
-               "detector, settings and optimiser) whose largest `t_stat` is at least this "
-               "one's (blank with `--boot 0`). A shift survives when it is below `--p-max` "
+        Column("t_stat", "1", "Local shift statistic: GLS t (AR(1) errors, rho estimated in "
+               "the model) of the step at this year, in the model with steps at this shift and "
+               "its neighbouring shifts (the regimes either side).", "float"),
+        Column("t_record", "1", "Whole-record shift statistic: GLS t (AR(1) errors) of a "
+               "single step at this year, the record before against the record after.",
+               "float"),
+        Column("p_value", "1", "Family-wise p-value: the shift's smaller bootstrap p of "
+               "`t_stat` and `t_record`, compared with the smaller p-values of red-noise null "
+               "series run through the same detector, settings and statistics (min-p); blank "
+               "with `--boot 0`. A shift survives when it is below `--p-max` "
                "(`shifts.p_max`).", "float"),
         Column("rsi", "1", "STARS regime shift index (blank for PELT).", "float"),
         Column("provisional", "-", "True when the first year lies within the last cut-off "

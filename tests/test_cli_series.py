@@ -6,6 +6,7 @@ import pandas as pd
 from typer.testing import CliRunner
 
 from coldindex.cli import app
+from coldindex.schema import SHIFTS
 
 runner = CliRunner()
 
@@ -85,8 +86,7 @@ def test_shifts_end_to_end(tmp_path: Path):
     assert code == 0, text
     assert "1986" in text  # the gap is reported
     sh = pd.read_csv(out / "shifts.csv")
-    assert list(sh.columns) == ["method", "year", "mean_before", "mean_after", "t_stat",
-                                "p_value", "rsi", "provisional"]
+    assert list(sh.columns) == list(SHIFTS.names)
     assert set(sh["method"]) == {"stars", "pelt"}
     assert (sh.groupby("method")["year"].apply(lambda s: 2001 in set(s))).all()
     # The 2-SD step in 40 years survives at the default --p-max 0.05; none is provisional.
