@@ -162,7 +162,7 @@ def _versions() -> dict[str, str]:
 
     out = {"python": platform.python_version()}
     for pkg in ("numpy", "scipy", "pandas", "xarray", "gstools", "matplotlib", "pyproj",
-                "shapely", "ruptures", "netCDF4"):
+                "shapely", "netCDF4", "pydantic"):
         try:
             out[pkg] = md.version(pkg)
         except md.PackageNotFoundError:  # pragma: no cover
