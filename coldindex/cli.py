@@ -769,7 +769,9 @@ def update(
     progress: ProgressOpt = None,
 ) -> None:
     """Run every stage into a new release: indices, classes, shifts, skill, projections, report."""
-    cfg = C.load_config(config)
+    from coldindex.io.files import load_config
+
+    cfg = load_config(config)
     if check_only:
         from coldindex.release import plan
 
@@ -835,7 +837,9 @@ def demo(
     inputs = folder / "inputs"
     write_scenario(inputs)
     out_console.print(f"Wrote the invented inputs to {inputs}")
-    cfg = C.load_config(inputs / "coldindex.toml").replace(index={"sims": sims},
+    from coldindex.io.files import load_config
+
+    cfg = load_config(inputs / "coldindex.toml").replace(index={"sims": sims},
                                                             shifts={"boot": boot})
     _run_update(cfg, folder / "release", None, workers, None, progress)
 

@@ -847,27 +847,9 @@ def _string_map(table: Any, key: str) -> dict[str, str]:
     return dict(table)
 
 
-def load_config(path: Path) -> Config:
-    """Read and validate a TOML configuration file.
-
-    Parameters
-    ----------
-    path
-        The TOML file.
-
-    Returns
-    -------
-    Config
-        The validated configuration, paths resolved relative to the file.
-    """
-    from coldindex.io.files import read_toml
-
-    return config_from_mapping(read_toml(path), base=path.parent, source=path)
-
-
 def config_from_mapping(raw: Mapping[str, Any], base: Path, source: Path | None = None
                         ) -> Config:
-    """Validate a parsed config mapping; see :func:`load_config`."""
+    """Validate a parsed config mapping (:func:`coldindex.io.files.load_config` reads one)."""
     known = {"inputs", *_MAP_TABLES, *_STAGE_TABLES}
     for key in raw:
         if key not in known:
@@ -916,19 +898,6 @@ def check_columns(cfg: Config) -> None:
             raise ConfigError(f"{key} names {col!r}, which indices.csv will not have with "
                               f"thresholds {list(cfg.index.thresholds)}; choose among "
                               f"bottom_mean_c and the below_<T>c_km2 columns.")
-
-
-def check_inputs(cfg: Config) -> None:
-    """The inputs a configuration names exist, are files, and are each given once."""
-    from coldindex.io.files import check_input_files
-
-    if (cfg.inputs.casts is None) == (cfg.inputs.profiles is None):
-        raise ConfigError("inputs.casts or inputs.profiles needs to be set (one of them, not "
-                          "both): the path of the casts file or of the profiles file.")
-    if cfg.inputs.ice is not None and cfg.inputs.ice_fields:
-        raise ConfigError("inputs.ice and inputs.ice_fields are both set; give the monthly ice "
-                          "file or the gridded ice fields, not both.")
-    check_input_files(cfg.inputs.files())
 
 
 # ---------------------------------------------------------------------------------------

@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 from coldindex._version import __version__
-from coldindex.config import Config, check_inputs
+from coldindex.config import Config
 from coldindex.errors import (
     ColdindexError,
     OutputError,
@@ -55,7 +55,7 @@ def plan(cfg: Config, out: Path, previous: Path | None = None) -> list[str]:
     Everything here is fast (no numerical work), so ``update --check`` answers in
     seconds and a full update refuses bad input before its first computation.
     """
-    check_inputs(cfg)
+    io_files.check_inputs(cfg)
     # The update writes only a new release-<n> folder, the pointer and its lock: inputs
     # may sit inside --out (even inside an older release) but never be one of those.
     releases.check_out_folder(out, {**cfg.inputs.files(), "the config": cfg.source},

@@ -3,8 +3,9 @@ from pathlib import Path
 import pytest
 
 from coldindex import config as C
-from coldindex.config import IndexOptions, load_config, parse_column_map
+from coldindex.config import IndexOptions, parse_column_map
 from coldindex.errors import ConfigError
+from coldindex.io.files import load_config
 
 
 def test_parse_column_map():

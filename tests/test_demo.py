@@ -119,7 +119,7 @@ def test_demo_raw_sources_tell_the_same_story():
 
 @pytest.mark.slow
 def test_update_runs_from_profiles_and_ice_fields_alone(tmp_path: Path):
-    from coldindex.config import load_config
+    from coldindex.io.files import load_config
     from coldindex.release import run_update
 
     cfg = load_config(SAMPLE / "coldindex-raw.toml")

@@ -29,7 +29,7 @@ import pytest
 from typer.testing import CliRunner
 
 from coldindex.cli import app
-from coldindex.config import load_config
+from coldindex.io.files import load_config
 from coldindex.io.writers import MANIFEST_NAME, sha256_file
 from tests.conftest import BOX_180, ROOT, synthetic_casts
 
@@ -986,7 +986,7 @@ KILLER = """
 import os, signal, sys
 from pathlib import Path
 from coldindex import pipeline, release
-from coldindex.config import load_config
+from coldindex.io.files import load_config
 from coldindex.io import writers
 
 point = sys.argv[3]

@@ -8,9 +8,9 @@ import pytest
 from typer.testing import CliRunner
 
 from coldindex.cli import app
-from coldindex.config import load_config
 from coldindex.covariates import covariates_table
 from coldindex.errors import ConfigError, OutputError, StageError
+from coldindex.io.files import load_config
 from coldindex.io.writers import sha256_file
 from coldindex.release import run_update
 from coldindex.schema import CLASSES, EMERGENCE, SHIFTS, SKILL, indices_table

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import pytest
 
-from coldindex.config import load_config
+from coldindex.io.files import load_config
 from coldindex.release import run_update
 from tests.test_pipeline import make_inputs
 from tests.test_regions import EAST_N, EAST_S, WEST, _collection

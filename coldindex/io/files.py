@@ -10,9 +10,12 @@ import os
 import sys
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from coldindex.errors import ConfigError, os_error_sentence
+
+if TYPE_CHECKING:
+    from coldindex.config import Config
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -98,3 +101,34 @@ def read_frame(path: Path) -> Any:
 def read_bytes(path: Path) -> bytes:
     """A file's bytes (e.g. a figure embedded in the report)."""
     return path.read_bytes()
+
+
+def load_config(path: Path) -> Config:
+    """Read and validate a TOML configuration file.
+
+    Parameters
+    ----------
+    path
+        The TOML file.
+
+    Returns
+    -------
+    Config
+        The validated configuration, paths resolved relative to the file.
+    """
+    from coldindex.config import config_from_mapping
+
+    return config_from_mapping(read_toml(path), base=path.parent, source=path)
+
+
+def check_inputs(cfg: Config) -> None:
+    """The inputs a configuration names exist, are files, and are each given once."""
+    from coldindex.errors import ConfigError
+
+    if (cfg.inputs.casts is None) == (cfg.inputs.profiles is None):
+        raise ConfigError("inputs.casts or inputs.profiles needs to be set (one of them, not "
+                          "both): the path of the casts file or of the profiles file.")
+    if cfg.inputs.ice is not None and cfg.inputs.ice_fields:
+        raise ConfigError("inputs.ice and inputs.ice_fields are both set; give the monthly ice "
+                          "file or the gridded ice fields, not both.")
+    check_input_files(cfg.inputs.files())
