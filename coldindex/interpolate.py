@@ -877,7 +877,7 @@ def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayL
             at_casts = np.einsum("bnk,nk->bn", S[:, stencil], sk_w)
             at_casts += noise_sd * rng.standard_normal((b, n_casts))
             X[:, start:start + b] = at_casts.T
-            np.take(S, flat_cells, axis=1, out=out[start:start + b])
+            np.take(S, flat_cells, axis=1, out=out[start:start + b], mode="clip")  # unbuffered
         _condition(out, kriging, X, f0, mask, gx, gy, cell_dist)
         return Realizations(values=out, node_of_cell=None, node_area=area, method="circulant",
                             node_km=fine, clipped_share=emb.clipped_share)
