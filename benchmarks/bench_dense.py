@@ -30,6 +30,7 @@ import tempfile
 import time
 from dataclasses import replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -81,8 +82,9 @@ def synthetic_year(domain, n: int, seed: int = 15) -> pd.DataFrame:
 def options(**kw):
     from coldindex.config import IndexOptions
 
-    base = dict(grid_km=5.0, variogram="exponential", thresholds=THRESHOLDS, sims=200,
-                param_draws=20, outlier_z=0.0, min_casts=30, min_coverage=0.0)
+    base: dict[str, Any] = dict(grid_km=5.0, variogram="exponential", thresholds=THRESHOLDS,
+                                sims=200, param_draws=20, outlier_z=0.0, min_casts=30,
+                                min_coverage=0.0)
     base.update(kw)
     return IndexOptions(**base)
 
@@ -166,7 +168,7 @@ def run_threshold() -> list[dict]:
         x, y = domain.to_xy(casts["lon"].to_numpy(), casts["lat"].to_numpy())
         xy = np.column_stack([x, y])
         z = casts["bottom_c"].to_numpy()
-        row = {"mode": "threshold", "casts": n}
+        row: dict[str, Any] = {"mode": "threshold", "casts": n}
         for name, make in (("exact", Kriging), ("local", dense.LocalKriging)):
             t = time.perf_counter()
             kr = make(xy, z, vg)

@@ -75,6 +75,7 @@ def test_local_kriging_with_every_cast_in_the_neighbourhood_is_exact_kriging():
     local = dense.LocalKriging(xy, z, vg, depth, neighbours=28)
     e1, v1, _ = exact.predict(cells, 0.3 * cells[:, 0])
     e2, v2, _ = local.predict(cells, 0.3 * cells[:, 0])
+    assert v1 is not None and v2 is not None
     assert np.allclose(local.beta, exact.beta, rtol=1e-7, atol=1e-10)
     assert np.allclose(e1, e2, atol=1e-8)
     assert np.allclose(v1, v2, atol=1e-8)
@@ -89,6 +90,7 @@ def test_local_kriging_does_not_depend_on_row_order():
     b = dense.LocalKriging(xy[perm], z[perm], vg, neighbours=40)
     ea, va, _ = a.predict(cells)
     eb, vb, _ = b.predict(cells)
+    assert va is not None and vb is not None
     assert np.allclose(ea, eb, atol=1e-10) and np.allclose(va, vb, atol=1e-10)
     la, lb = a.loo()[0], b.loo()[0]
     assert np.allclose(la[perm], lb, atol=1e-10)
