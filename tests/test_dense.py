@@ -205,3 +205,39 @@ def test_memory_estimate_follows_the_path_the_year_takes():
     # A fine grid: blocked simulations drop the S x m realizations.
     fine = dense.working_memory_bytes(168, 469847, 36, 200)
     assert fine < 8 * (200 * 469847)
+
+
+def test_fields_nc_is_written_a_year_at_a_time_with_the_eager_values(tmp_path, box_domain):
+    # Source: the values fields_dataset stored before it became lazy: the float32 map and
+    # SD placed on the grid, P = Phi((T - m) / s) from those float32 values.
+    import pandas as pd
+    import xarray as xr
+
+    from coldindex.domain import make_grid
+    from coldindex.io.writers import fields_dataset, write_netcdf
+
+    grid = make_grid(box_domain, 10.0)
+    m = int(grid.mask.sum())
+    rng = np.random.default_rng(4)
+    est = rng.normal(1.0, 1.0, (3, m))
+    sd = np.abs(rng.normal(0.3, 0.1, (3, m)))
+    est[1] = np.nan  # a year without indices
+    sd[1] = np.nan
+    casts = pd.DataFrame({"year": [2001, 2003], "lat": [61.0, 61.2], "lon": [180.0, 180.1],
+                          "bottom_c": [0.0, 0.5], "date": ["2001-07-01", "2003-07-02"]})
+    ds = fields_dataset([2001, 2002, 2003], est, sd, [0.0, 1.5], grid, box_domain, casts)
+    write_netcdf(ds, tmp_path / "a.nc")
+    write_netcdf(fields_dataset([2001, 2002, 2003], est, sd, [0.0, 1.5], grid, box_domain,
+                                casts), tmp_path / "b.nc")
+    assert (tmp_path / "a.nc").read_bytes() == (tmp_path / "b.nc").read_bytes()
+    e32 = grid.to_2d(est).astype("float32")
+    s32 = grid.to_2d(sd).astype("float32")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p = ndtr((1.5 - e32.astype(float)) / s32.astype(float)).astype("float32")
+    with xr.open_dataset(tmp_path / "a.nc") as f:
+        assert f["bottom_temperature"].encoding["chunksizes"] == (1, *grid.shape)
+        assert np.array_equal(f["bottom_temperature"].values, e32, equal_nan=True)
+        assert np.array_equal(f["bottom_temperature_sd"].values, s32, equal_nan=True)
+        assert np.array_equal(f["p_below_1p5c"].values, p, equal_nan=True)
+        assert f["p_below_0c"].attrs["grid_mapping"] == "albers_conical_equal_area"
+        assert np.isnan(f["bottom_temperature"].values[1]).all()
