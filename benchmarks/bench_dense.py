@@ -89,18 +89,22 @@ def options(**kw):
     return IndexOptions(**base)
 
 
-def run_year(n: int) -> dict:
+def run_year(n: int, threshold: int | None = None) -> dict:
+    from coldindex import dense
     from coldindex.domain import make_grid
     from coldindex.indices import compute_indices
 
     domain = sample_domain()
     casts = synthetic_year(domain, n)
     grid = make_grid(domain, 5.0)
+    if threshold is not None:  # force a path: the year-level threshold measurement
+        dense.DENSE_THRESHOLD = threshold
     t = time.perf_counter()
     res = compute_indices(casts, domain, grid, options())
     wall = time.perf_counter() - t
     row = res.table.iloc[0]
-    return {"mode": "year", "casts": n, "cells": int(grid.mask.sum()), "seconds": round(wall, 1),
+    return {"mode": "year", "casts": n, "threshold": dense.DENSE_THRESHOLD,
+            "cells": int(grid.mask.sum()), "seconds": round(wall, 1),
             "peak_mb": round(peak_mb()), "variogram": row["variogram"],
             "simulation": row["simulation"], "note": row["note"]}
 
@@ -233,9 +237,11 @@ def main() -> None:
     ap.add_argument("--casts", type=int, default=1000)
     ap.add_argument("--grid-km", type=float, default=1.0)
     ap.add_argument("--years", type=int, default=0, help="last K sample years (0 = all)")
+    ap.add_argument("--threshold", type=int, default=None,
+                    help="year: casts above which the dense path runs (default: the shipped)")
     args = ap.parse_args()
     if args.mode == "year":
-        rows = [run_year(args.casts)]
+        rows = [run_year(args.casts, args.threshold)]
     elif args.mode == "accuracy":
         rows = [run_accuracy(args.casts)]
     elif args.mode == "threshold":

@@ -467,8 +467,8 @@ AnyKriging = Kriging | LocalKriging
 
 
 def make_kriging(xy: ArrayLike, values: ArrayLike, variogram: Variogram,
-                 drift: ArrayLike | None = None, dense_threshold: int = DENSE_THRESHOLD,
-                 neighbours: int = NEIGHBOURS) -> AnyKriging:
+                 drift: ArrayLike | None = None, dense_threshold: int | None = None,
+                 neighbours: int | None = None) -> AnyKriging:
     """Exact kriging up to ``dense_threshold`` casts, local-neighbourhood kriging above.
 
     Parameters
@@ -476,22 +476,24 @@ def make_kriging(xy: ArrayLike, values: ArrayLike, variogram: Variogram,
     xy, values, variogram, drift
         As :class:`coldindex.interpolate.Kriging`.
     dense_threshold
-        Most casts kriged exactly (measured default :data:`DENSE_THRESHOLD`).
+        Most casts kriged exactly; None: :data:`DENSE_THRESHOLD` (measured).
     neighbours
-        Nearest casts of every target for :class:`LocalKriging`.
+        Nearest casts of every target for :class:`LocalKriging`; None: :data:`NEIGHBOURS`.
 
     Returns
     -------
     Kriging or LocalKriging
         The kriging system of the year.
     """
-    if len(np.asarray(values)) > dense_threshold:
-        return LocalKriging(xy, values, variogram, drift, neighbours=neighbours)
+    limit = DENSE_THRESHOLD if dense_threshold is None else dense_threshold
+    if len(np.asarray(values)) > limit:
+        return LocalKriging(xy, values, variogram, drift,
+                            neighbours=NEIGHBOURS if neighbours is None else neighbours)
     return Kriging(xy, values, variogram, drift)
 
 
 def fit_year(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | None = None,
-             method: str = "reml", dense_threshold: int = DENSE_THRESHOLD,
+             method: str = "reml", dense_threshold: int | None = None,
              subsample: int = FIT_SUBSAMPLE) -> Fit:
     """Fit the year's variogram; above ``dense_threshold`` casts, to a stratified subsample.
 
@@ -500,7 +502,7 @@ def fit_year(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | N
     xy, values, family, drift, method
         As :func:`coldindex.fitting.fit_variogram`.
     dense_threshold
-        Most casts fitted whole.
+        Most casts fitted whole; None: :data:`DENSE_THRESHOLD`.
     subsample
         Subsample size for dense years (:func:`stratified_subsample`).
 
@@ -516,7 +518,7 @@ def fit_year(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | N
     """
     xy = np.asarray(xy, float)
     z = np.asarray(values, float)
-    if len(z) <= dense_threshold:
+    if len(z) <= (DENSE_THRESHOLD if dense_threshold is None else dense_threshold):
         return fit_variogram(xy, z, family, drift, method=method)
     sub = stratified_subsample(xy, subsample)
     d = None if drift is None else drift_matrix(len(z), drift)[sub, 1:]
@@ -524,7 +526,7 @@ def fit_year(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | N
 
 
 def working_memory_bytes(n_casts: int, n_cells: int, n_years: int, sims: int,
-                         dense_threshold: int = DENSE_THRESHOLD,
+                         dense_threshold: int | None = None,
                          blocked_values: int = BLOCKED_VALUES) -> int:
     """Working memory of the index computation, estimated before it starts. [bytes]
 
@@ -537,7 +539,7 @@ def working_memory_bytes(n_casts: int, n_cells: int, n_years: int, sims: int,
     nodes. Every path keeps the mapped estimate and SD of every year (2 Y m).
     """
     n, m, y, s = int(n_casts), int(n_cells), int(n_years), int(sims)
-    if n > dense_threshold:
+    if n > (DENSE_THRESHOLD if dense_threshold is None else dense_threshold):
         sub = min(n, FIT_SUBSAMPLE)
         return 8 * (4 * sub * sub + n * (VECCHIA_NEIGHBOURS + 1) * VECCHIA_NEIGHBOURS
                     + 4 * 600 * 600 + 2 * y * m + 100 * m)
