@@ -720,13 +720,14 @@ _COND_CELLS = 1024
 
 def _condition(out: FloatArray, kriging: Kriging, X: FloatArray, f0: FloatArray,
                mask: NDArray[np.bool_], gx: FloatArray, gy: FloatArray,
-               cell_dist: FloatArray | None) -> None:
+               cell_dist: FloatArray | None, threads: int = 2) -> None:
     """Turn unconditional values at the cells into conditional realizations, in place.
 
     ``out[j] += estimate - krige(X[:, j])`` for every realization j, one block of
     cells at a time: the block's covariances to the casts are formed once for the
     estimate and all realizations (one matrix product), never the whole cells x
-    casts matrix unless ``cell_dist`` is given.
+    casts matrix unless ``cell_dist`` is given. The blocks are shared among
+    ``threads`` threads (each writes its own cells: the result does not depend on it).
     """
     vg = kriging.vg
     Q, R = kriging._q
@@ -737,7 +738,8 @@ def _condition(out: FloatArray, kriging: Kriging, X: FloatArray, f0: FloatArray,
     if cell_dist is None or cell_dist.shape != (m, len(kriging.z)):
         xx, yy = np.meshgrid(gx, gy)
         cxy = np.column_stack([xx[mask], yy[mask]])
-    for start in range(0, m, _COND_CELLS):
+
+    def block(start: int) -> None:
         sl = slice(start, min(start + _COND_CELLS, m))
         d = cdist(cxy[sl], kriging.xy) if cxy is not None else cell_dist[sl]  # type: ignore[index]
         C = covariance_blocked(vg.family, d, vg.len_scale, vg.sill,
@@ -747,6 +749,14 @@ def _condition(out: FloatArray, kriging: Kriging, X: FloatArray, f0: FloatArray,
         blk = out[:, sl]
         blk += est[None, :]
         blk -= corr.T
+
+    starts = range(0, m, _COND_CELLS)
+    if threads > 1 and len(starts) > 1:
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            list(pool.map(block, starts))
+    else:
+        for start in starts:
+            block(start)
 
 
 def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayLike,
