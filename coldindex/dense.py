@@ -76,11 +76,11 @@ FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int_]
 
 #: Casts a year above which :func:`make_kriging` uses :class:`LocalKriging` and
-#: :func:`fit_year` a subsample. Measured (benchmarks/bench_dense.py threshold, sample
-#: domain, 5 km grid): exact map, SD and LOO cost 1.5 s at 1,000 casts and 7.7 s at 2,000,
-#: local 2.0 s and 2.1 s; the crossover lies between, and at 1,500 casts the exact
-#: REML fit is as large as the dense path's subsample fit.
-DENSE_THRESHOLD = 1500
+#: :func:`fit_year` a subsample. Measured (benchmarks/bench_dense.py year --threshold, a
+#: whole year on the sample's domain and 5 km grid with 200 simulations): exact and local
+#: cost the same at 1,000 casts (9.6 and 10.3 s; 294 and 224 MB), local is cheaper above
+#: (1,500 casts: 27 and 18 s; 2,000: 66 and 20 s, 486 and 254 MB).
+DENSE_THRESHOLD = 1000
 #: Nearest casts every target is kriged from (at least; a tile's neighbourhood is the union).
 NEIGHBOURS = 128
 #: Largest stratified subsample for the variogram fit and the drift of a dense year.
