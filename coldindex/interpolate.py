@@ -506,8 +506,9 @@ def unconditional_fields(emb: Embedding, n: int, rng: np.random.Generator,
 
     def work(k: int) -> None:
         r = children[k]
+        buf = np.empty((my, 2 * mx), dtype=np.float32)  # one buffer a thread: no page faults
         for i in pairs[k::threads]:
-            eps = r.standard_normal((my, 2 * mx), dtype=np.float32).view(np.complex64)
+            eps = r.standard_normal(dtype=np.float32, out=buf).view(np.complex64)
             eps *= root
             # The 2-D FFT, axis 0 then axis 1 (fft2's order, same bytes), the second pass
             # only over the ny rows the grid keeps.

@@ -262,3 +262,21 @@ def test_pieces_shared_by_repeated_draws_change_nothing():
         np.testing.assert_allclose(got.node_area, ref.node_area)
     assert methods.count("exact") == 2 and methods.count("circulant") == 4
     assert not cache.embeddings and not cache.stencils and not cache.factors  # all dropped
+
+
+def test_unconditional_fields_equal_the_plain_fft2_of_the_same_draws():
+    # The pruned two-pass transform and the reused draw buffers give the bytes of the
+    # plain recipe: per thread's child generator, complex draws times the root, fft2.
+    emb = circulant_embedding((NY, NX), CELL, Variogram("exponential", 0.7, 20.0, 0.0))
+    got = unconditional_fields(emb, 7, np.random.default_rng(12))
+    children = np.random.default_rng(12).spawn(2)
+    my, mx = emb.root.shape
+    ref = np.empty_like(got)
+    for k in range(2):
+        for i in list(range(0, 7, 2))[k::2]:
+            eps = children[k].standard_normal((my, 2 * mx), dtype=np.float32).view(np.complex64)
+            f = np.fft.fft2(eps * emb.root.astype(np.float32))[:NY, :NX]
+            ref[i] = f.real
+            if i + 1 < 7:
+                ref[i + 1] = f.imag
+    np.testing.assert_allclose(got, ref, atol=1e-5)  # float32 transforms of two libraries
