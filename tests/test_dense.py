@@ -108,6 +108,25 @@ def test_stratified_subsample_is_spread_and_order_free():
     assert len(cells) == 25
 
 
+def test_fit_subsample_keeps_close_pairs_and_is_order_free():
+    from scipy.spatial import cKDTree
+
+    xy, _, _ = _survey(6000)
+    sub = dense.fit_subsample(xy, 600)
+    assert 0.85 * 600 <= len(sub) <= 600
+    perm = np.random.default_rng(5).permutation(len(xy))
+    sub_p = dense.fit_subsample(xy[perm], 600)
+    assert {tuple(p) for p in xy[sub]} == {tuple(p) for p in xy[perm][sub_p]}
+    # A third of the subsample sits at the survey's own spacing: its nearest-neighbour
+    # distances reach down to the survey's, which a stratified subsample alone does not.
+    survey_nn = np.median(cKDTree(xy).query(xy, k=2)[0][:, 1])
+    nn = cKDTree(xy[sub]).query(xy[sub], k=2)[0][:, 1]
+    spread = dense.stratified_subsample(xy, 600)
+    nn_spread = cKDTree(xy[spread]).query(xy[spread], k=2)[0][:, 1]
+    assert np.mean(nn <= 1.5 * survey_nn) >= 0.25
+    assert np.mean(nn_spread <= 1.5 * survey_nn) < 0.05
+
+
 def test_factory_switches_at_the_threshold_and_the_fit_uses_a_subsample():
     xy, z, _ = _survey(300)
     vg = Variogram("exponential", 0.5, 60.0, 0.05)
@@ -115,7 +134,7 @@ def test_factory_switches_at_the_threshold_and_the_fit_uses_a_subsample():
     assert isinstance(dense.make_kriging(xy, z, vg, dense_threshold=299), dense.LocalKriging)
     whole = dense.fit_year(xy, z, "exponential", dense_threshold=300)
     part = dense.fit_year(xy, z, "exponential", dense_threshold=299, subsample=150)
-    sub = dense.stratified_subsample(xy, 150)
+    sub = dense.fit_subsample(xy, 150)
     ref = fit_variogram(xy[sub], z[sub], "exponential")
     assert part.variogram == ref.variogram
     assert whole.variogram != part.variogram
