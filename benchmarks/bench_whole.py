@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import shutil
 import statistics
@@ -173,7 +174,8 @@ def run_ratios(args: argparse.Namespace) -> None:
         (work / "grid.json").write_text(json.dumps(info))
         print(f"{args.years} years x {args.casts} casts, {info['cells']} active cells "
               f"({info['shape'][0]} x {info['shape'][1]}), {FAMILY} sill {SILL} len {LEN_KM} "
-              f"km nugget {NUGGET}, {args.repeats} repeats\n")
+              f"km nugget {NUGGET}, {args.repeats} repeats; load average at the start "
+              f"{os.getloadavg()[0]:.1f} (figures are provisional unless the machine is idle)\n")
         peer = [sys.executable, str(HERE / "peer_pykrige.py"), str(work / "peer_casts.csv"),
                 str(work / "cells.npz"), str(work / "peer.csv"), "--family", FAMILY,
                 "--sill", str(SILL), "--len-km", str(LEN_KM), "--nugget", str(NUGGET)]
@@ -210,6 +212,7 @@ def run_ratios(args: argparse.Namespace) -> None:
         print(f"agreement with the peer in the {len(same)} years where coldindex flagged no "
               f"spatial outlier: mean within {d_mean:.1e} °C, area below 0 °C within "
               f"{d_area:.1e} (relative; the casts' lon/lat are rounded to 1e-5 degrees)")
+        print(f"load average at the end {os.getloadavg()[0]:.1f}")
     finally:
         if not args.keep:
             shutil.rmtree(work, ignore_errors=True)
