@@ -159,7 +159,7 @@ def fit_subsample(xy: ArrayLike, size: int, close_share: float = CLOSE_PAIR_SHAR
     behaviour a spread-out subsample cannot see. Measured on synthetic years of
     5,000 and 20,000 casts (benchmarks/bench_dense.py): without the pairs the fitted
     nugget came out near zero and the leave-one-out mean squared standardized error
-    was 1.5 and 2.4 (intervals too narrow); with them, 1.05 and 1.11. Ties in
+    was 1.5 and 2.4 (intervals too narrow); with them, 1.02 and 1.15. Ties in
     distance are broken by position, so the choice does not depend on row order.
 
     Parameters
