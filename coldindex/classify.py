@@ -18,6 +18,7 @@ from scipy.special import ndtr
 
 from coldindex.config import parse_rule
 from coldindex.errors import InputError
+from coldindex.schema import CUTS
 
 CLASSES = ("cold", "average", "warm")
 
@@ -54,7 +55,7 @@ class Cuts:
     @classmethod
     def from_dict(cls, d: dict, source: str = "cuts file") -> Cuts:
         """Build from a ``cuts.json`` dictionary, refusing an incomplete one."""
-        need = ("column", "low", "high", "rule", "reference", "direction")
+        need = CUTS.names
         missing = [k for k in need if k not in d]
         if missing:
             raise InputError(f"{source} lacks {', '.join(missing)}; write it with coldindex "

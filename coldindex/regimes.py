@@ -93,7 +93,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import stats as sps
 
 from coldindex.errors import InputError
-from coldindex.schema import SHIFTS
+from coldindex.schema import REGIMES, SHIFTS
 from coldindex.stats import lag1_autocorrelation, lag1_subsample_median, simulate_ar1
 
 FloatArray = NDArray[np.float64]
@@ -823,7 +823,7 @@ def detect_shifts(years: ArrayLike, values: ArrayLike, methods: tuple[str, ...] 
             regime_rows.append({"method": method, "start": int(y[a]), "end": int(y[b - 1]),
                                 "mean": mu, "n": b - a})
     shifts = pd.DataFrame(shift_rows, columns=SHIFT_COLUMNS).astype({"provisional": bool})
-    regimes = pd.DataFrame(regime_rows, columns=["method", "start", "end", "mean", "n"])
+    regimes = pd.DataFrame(regime_rows, columns=list(REGIMES.names))
     return ShiftResult(shifts=shifts, regimes=regimes, phi=phi, p_max=opts.p_max,
                        prewhiten_rho=rho, skipped_years=skipped)
 

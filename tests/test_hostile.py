@@ -485,6 +485,8 @@ OPTION_CASES: dict[str, tuple[str, list, str]] = {
     "index_sims_negative": ("index", ["--sims", "-1"], "--sims"),
     "index_method": ("index", ["--method", "spline"], "--method"),
     "index_workers_negative": ("index", ["--workers", "-1"], "--workers"),
+    "index_decimal": ("index", ["--decimal", ";"], "--decimal"),
+    "index_date_format": ("index", ["--date-format", "dd.mm.yyyy"], "--date-format"),
     "classify_cut_nan": ("classify", ["--cut-values", "nan,nan"], "finite"),
     "classify_cut_inf": ("classify", ["--cut-values", "-inf,1"], "finite"),
     "classify_cut_order": ("classify", ["--cut-values", "2,1"], "LOW <= HIGH"),
