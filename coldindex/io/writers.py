@@ -35,6 +35,7 @@ import xarray as xr
 from coldindex._version import __version__
 from coldindex.domain import Domain, Grid
 from coldindex.errors import ColdindexError, OutputError, os_error_sentence
+from coldindex.io.files import same_file
 from coldindex.schema import Table, output_table, threshold_label
 
 MANIFEST_NAME = "complete.json"
@@ -51,17 +52,6 @@ def prepare_out_dir(path: Path) -> Path:
     except OSError as exc:
         raise OutputError(os_error_sentence(exc, "creating the output folder", path)) from None
     return path
-
-
-def same_file(a: Path, b: Path) -> bool:
-    """True when two paths name the same file (real path, or device and inode)."""
-    try:
-        if os.path.realpath(a) == os.path.realpath(b):
-            return True
-        sa, sb = os.stat(a), os.stat(b)
-    except (OSError, ValueError):
-        return False
-    return (sa.st_dev, sa.st_ino) == (sb.st_dev, sb.st_ino)
 
 
 def refuse_overwriting_inputs(targets: Iterable[Path], inputs: Iterable[Path | None],
