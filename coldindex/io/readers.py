@@ -111,7 +111,7 @@ def read_json(path: Path, advice: str, kind: str = "JSON") -> Any:
 
 def refuse_repeated_files(paths: Sequence[Path], what: str) -> None:
     """Refuse the same file given twice (same real path or inode), e.g. two model files."""
-    from coldindex.io.writers import same_file
+    from coldindex.io.files import same_file
 
     for i, p in enumerate(paths):
         for q in paths[:i]:
