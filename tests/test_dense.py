@@ -167,19 +167,21 @@ def test_blocked_simulations_equal_the_serial_ones_draw_for_draw(len_km):
     assert np.allclose(a.region_means, b.region_means, atol=1e-10, equal_nan=True)
 
 
-def test_dense_simulations_match_exact_ones_on_the_same_draws():
+@pytest.mark.parametrize("with_drift", [False, True])
+def test_dense_simulations_match_exact_ones_on_the_same_draws(with_drift):
     # Source: the blocked simulation with exact kriging (equal to the serial path, test
     # above) on the same seed is the reference; the issue asks `_sd` within 5 %.
-    xy, z, _ = _survey(900, nugget=0.1)
+    xy, z, depth = _survey(900, nugget=0.1)
     grid = _grid(300.0, 6.0)
     cells, area = grid.active_xy(), grid.active_area()
+    drift, d0 = (depth, 0.3 * cells[:, 0]) if with_drift else (None, None)
     vg = Variogram("exponential", 0.5, 10.0, 0.1)
     fit = replace(fit_variogram(xy[:200], z[:200], "exponential"), variogram=vg)
     opts = _sim_options(60)
-    exact = dense.simulate_blocked(Kriging(xy, z, vg), fit, xy, z, None, grid, cells, area,
-                                   None, opts, np.random.default_rng(9))
-    local = dense.simulate_blocked(dense.LocalKriging(xy, z, vg), fit, xy, z, None, grid,
-                                   cells, area, None, opts, np.random.default_rng(9))
+    exact = dense.simulate_blocked(Kriging(xy, z, vg, drift), fit, xy, z, drift, grid, cells,
+                                   area, d0, opts, np.random.default_rng(9))
+    local = dense.simulate_blocked(dense.LocalKriging(xy, z, vg, drift), fit, xy, z, drift,
+                                   grid, cells, area, d0, opts, np.random.default_rng(9))
     assert exact.method == local.method == "circulant"
     assert "local kriging" in local.note
     assert abs(np.std(local.means) / np.std(exact.means) - 1) <= 0.05
