@@ -285,10 +285,11 @@ def year_hashes(table: pd.DataFrame) -> dict[str, str]:
 
     cols = ["year", "station", "date", "lat", "lon", "depth_m", "bottom_c", "salinity",
             "surface_c"]
-    text = table[cols].map(lambda v: "" if pd.isna(v) else str(v))
+    sub = table[cols]
+    text = sub.astype(object).where(sub.notna(), "").astype(str)  # str(v), "" for missing
+    rows = text[cols[0]].str.cat([text[c] for c in cols[1:]], sep="\t")  # vectorised joins
     out: dict[str, str] = {}
-    for yr, g in text.groupby("year", sort=True):
-        lines = sorted("\t".join(r) for r in g.itertuples(index=False, name=None))
+    for yr, g in rows.groupby(text["year"], sort=True):
         key = str(yr) if yr else "unknown"
-        out[key] = hashlib.sha256("\n".join(lines).encode()).hexdigest()
+        out[key] = hashlib.sha256("\n".join(sorted(g.tolist())).encode()).hexdigest()
     return out
