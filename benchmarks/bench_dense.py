@@ -9,8 +9,9 @@ Modes (each size runs in a fresh process, so its peak resident memory is its own
   the same variogram parameters: max |difference| of the map over cells, max relative
   difference of the map's SD, of the expected areas (share of the domain), of the
   leave-one-out errors, and of the simulations' ``_sd`` (same seed, point estimate).
-* ``threshold``: exact against local kriging (map, SD and LOO) at 500..3000 casts, the
-  measurement behind ``coldindex.dense.DENSE_THRESHOLD``.
+* ``threshold``: exact against local kriging (map, SD and LOO alone) at 250..3000 casts;
+  ``year --threshold T`` forces a whole year down either path, the measurement behind
+  ``coldindex.dense.DENSE_THRESHOLD``.
 * ``fine --grid-km G [--years K]``: the sample's casts, domain and bathymetry on a grid
   of G km (1 km: 134,883 cells; 0.535 km: 469,847 cells), through ``compute_indices``
   and ``fields.nc``; prints time and peak memory.
@@ -254,6 +255,9 @@ def main() -> None:
             rows += child(["accuracy", "--casts", str(n)])
         for n in (1000, 5000, 20000):
             rows += child(["year", "--casts", str(n)])
+        for n in (1000, 1500, 2000):  # the threshold: a whole year down either path
+            for forced in ("100000", "500"):
+                rows += child(["year", "--casts", str(n), "--threshold", forced])
         rows += child(["fine", "--grid-km", "1.0"])
         rows += child(["fine", "--grid-km", "0.535", "--years", "3"])
     for r in rows:
