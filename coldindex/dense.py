@@ -530,7 +530,7 @@ AnyKriging = Kriging | LocalKriging
 
 def make_kriging(xy: ArrayLike, values: ArrayLike, variogram: Variogram,
                  drift: ArrayLike | None = None, dense_threshold: int | None = None,
-                 neighbours: int | None = None) -> AnyKriging:
+                 neighbours: int | None = None, subsample: int | None = None) -> AnyKriging:
     """Exact kriging up to ``dense_threshold`` casts, local-neighbourhood kriging above.
 
     Parameters
@@ -541,6 +541,9 @@ def make_kriging(xy: ArrayLike, values: ArrayLike, variogram: Variogram,
         Most casts kriged exactly; None: :data:`DENSE_THRESHOLD` (measured).
     neighbours
         Nearest casts of every target for :class:`LocalKriging`; None: :data:`NEIGHBOURS`.
+    subsample
+        Size of the fit's subsample (the same as given to :func:`fit_year`, whose
+        posterior the simulations draw from); None: :data:`FIT_SUBSAMPLE`.
 
     Returns
     -------
@@ -550,7 +553,8 @@ def make_kriging(xy: ArrayLike, values: ArrayLike, variogram: Variogram,
     limit = DENSE_THRESHOLD if dense_threshold is None else dense_threshold
     if len(np.asarray(values)) > limit:
         return LocalKriging(xy, values, variogram, drift,
-                            neighbours=NEIGHBOURS if neighbours is None else neighbours)
+                            neighbours=NEIGHBOURS if neighbours is None else neighbours,
+                            subsample=FIT_SUBSAMPLE if subsample is None else subsample)
     return Kriging(xy, values, variogram, drift)
 
 
