@@ -15,9 +15,9 @@ returns :class:`LocalKriging` instead, with the same interface:
   estimate is simple kriging of the residuals ``z - F beta`` from the tile's
   neighbourhood, plus ``f0^T beta``; the variance is the simple-kriging variance
   plus ``u^T Cov(beta) u``, ``u = f0 - F_N^T K_N^-1 c``, the same decomposition as
-  universal kriging's (Cressie 1993, sect. 3.4.5), with the drift estimated once
+  universal kriging's (Cressie 1993, sect. 3.4), with the drift estimated once
   for the whole year rather than in each neighbourhood (a moving neighbourhood
-  with a global drift, Chilès & Delfiner 2012, sect. 3.6).
+  with a global drift, Chilès & Delfiner 2012, ch. 3).
 * **Leave-one-out.** Dubrule's closed form inside each neighbourhood: the error of
   predicting cast i from the other casts of its neighbourhood, ``(K_N^-1 r)_i /
   (K_N^-1)_ii`` with ``r = z - F beta``, and its variance ``1 / (K_N^-1)_ii``.
@@ -39,13 +39,19 @@ References
 ----------
 Cressie, N. (1993). Statistics for Spatial Data, revised edition. Wiley, sect. 3.4.
 Chilès, J.-P. & Delfiner, P. (2012). Geostatistics: Modeling Spatial Uncertainty,
-2nd edition. Wiley, sect. 3.6 (moving neighbourhoods).
+2nd edition. Wiley, ch. 3 (moving neighbourhoods).
 Dubrule, O. (1983). Cross validation of kriging in a unique neighborhood.
 Mathematical Geology 15, 687-699.
 Stein, M. L., Chi, Z. & Welty, L. J. (2004). Approximating likelihoods for large
 spatial data sets. J. R. Stat. Soc. B 66, 275-296 (fits to subsets of the data).
 Diggle, P. & Lophaven, S. (2006). Bayesian geostatistical design. Scand. J. Stat.
 33, 53-64 (lattice plus close pairs designs).
+Vecchia, A. V. (1988). Estimation and model identification for continuous spatial
+processes. J. R. Stat. Soc. B 50, 297-312.
+Guinness, J. (2018). Permutation and grouping methods for sharpening Gaussian
+process approximations. Technometrics 60, 415-429.
+Journel, A. G. & Huijbregts, C. J. (1978). Mining Geostatistics. Academic Press,
+ch. VII (conditioning by kriging).
 """
 
 from __future__ import annotations
@@ -405,8 +411,8 @@ class LocalKriging:
 
     References
     ----------
-    Chilès & Delfiner (2012), Geostatistics, sect. 3.6; Cressie (1993), Statistics
-    for Spatial Data, sect. 3.4.5; Dubrule (1983), Math. Geol. 15, 687-699.
+    Chilès & Delfiner (2012), Geostatistics, ch. 3; Cressie (1993), Statistics
+    for Spatial Data, sect. 3.4; Dubrule (1983), Math. Geol. 15, 687-699.
     """
 
     def __init__(self, xy: ArrayLike, values: ArrayLike, variogram: Variogram,

@@ -67,7 +67,7 @@ def test_local_kriging_matches_exact_within_the_issue_tolerances(with_drift):
 def test_local_kriging_with_every_cast_in_the_neighbourhood_is_exact_kriging():
     # Source: with all casts in every neighbourhood and a Vecchia factor that conditions
     # on every earlier cast, simple kriging around the GLS drift equals universal kriging
-    # (Cressie 1993, sect. 3.4.5): estimate and variance agree to rounding.
+    # (Cressie 1993, sect. 3.4): estimate and variance agree to rounding.
     xy, z, depth = _survey(28)
     vg = Variogram("spherical", 0.4, 120.0, 0.02)
     cells = np.random.default_rng(1).uniform(0, 300, (500, 2))
