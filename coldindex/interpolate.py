@@ -853,6 +853,8 @@ def conditional_realizations(kriging: Kriging, grid_x: ArrayLike, grid_y: ArrayL
     lens = (vg.family, vg.len_scale)
     unit = Variogram(vg.family, 1.0, vg.len_scale, 0.0)
     root_scale = float(np.sqrt(vg.sill))
+    if not vg.sill > 0:
+        cache = None  # a pure nugget: nothing to scale, nothing worth sharing
     if cache is None:
         emb = circulant_embedding((len(fgy), len(fgx)), fine, vg, pad_cap=pad_cap)
     else:
