@@ -84,13 +84,14 @@ def kriging_memory_bytes(n_casts: int, n_cells: int, n_years: int, sims: int,
                          workers: int = 1) -> int:
     """Working memory of the index computation, estimated before it starts. [bytes]
 
-    ``8 * (w (4 n^2 + n m + S m) + 2 Y m)``: in each of ``w`` workers, four n x n kriging
-    matrices for the year with the most casts (n), the cell-to-cast distances (n x m
-    active cells) and one year's simulations (S); the mapped estimate and SD of every
-    year (Y) once; float64.
+    One year's working set (:func:`coldindex.dense.working_memory_bytes`, exact or local
+    kriging as the year's size decides) in each of ``workers`` processes, plus the mapped
+    estimate and SD of every year (``2 Y m`` float64 values) once.
     """
-    n, m, w = int(n_casts), int(n_cells), max(int(workers), 1)
-    return 8 * (w * (4 * n * n + n * m + int(sims) * m) + 2 * int(n_years) * m)
+    from coldindex.dense import working_memory_bytes
+
+    one_year = working_memory_bytes(n_casts, n_cells, 0, sims)
+    return max(int(workers), 1) * one_year + 16 * int(n_years) * int(n_cells)
 
 
 MAX_CELLS = 2_000_000  # cap on grid cells, checked before the grid is laid (no source)
