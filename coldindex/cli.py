@@ -335,6 +335,8 @@ def index(
                            ] = IX.param_draws,
     per_year_family: Annotated[bool, typer.Option(
         help=_h(C.IndexOptions, "per_year_family"))] = IX.per_year_family,
+    variogram_params: Annotated[str, typer.Option(
+        help=_h(C.IndexOptions, "variogram_params"))] = "",
     bathymetry: Annotated[Path | None, typer.Option(
         help="Bathymetry NetCDF used as external drift.")] = None,
     columns: ColumnsOpt = None,
@@ -365,6 +367,7 @@ def index(
                         seed=seed, min_casts=min_casts, min_coverage=min_coverage,
                         method=method, variogram=variogram, fit=fit, param_draws=param_draws,
                         per_year_family=per_year_family, outlier_z=outlier_z,
+                        variogram_params=variogram_params or None,
                         depth_zones=depth_zones, timing_drift=timing_drift,
                         reference_day=reference_day)
     read = C.from_flags(C.ReadOptions, decimal=decimal, date_format=date_format)

@@ -311,6 +311,11 @@ class IndexOptions(_Table):
     param_draws: int = _f(20, "Variogram parameter draws a year shared by the simulations, "
                           "so the intervals include the variogram's uncertainty (0 = fitted "
                           "parameters only).")
+    variogram_params: tuple[float, ...] = _f((), "Fixed variogram parameters "
+                                             "sill,len_km,nugget [°C², km, °C²] used every "
+                                             "year instead of a fit (needs a variogram "
+                                             "family, not auto; the simulations then use "
+                                             "these parameters alone). Empty: fitted.")
     per_year_family: bool = _f(False, "Opt in: choose the variogram family separately each "
                                "year.")
     freeze_tolerance_c: float = _f(0.2, "Sensor tolerance below TEOS-10's freezing point "
@@ -364,6 +369,13 @@ class IndexOptions(_Table):
         _need(-92.0 <= self.reference_day <= 458.0, "reference_day",
               "a day of the survey year in -92..458 (0 = median survey day, frozen)",
               self.reference_day)
+        vp = self.variogram_params
+        if vp:
+            _need(len(vp) == 3 and vp[0] > 0 and vp[1] > 0 and vp[2] >= 0,
+                  "variogram_params", "three numbers sill,len_km,nugget with sill > 0, "
+                  "len_km > 0 and nugget >= 0", list(vp))
+            _need(self.variogram in FAMILIES and not self.per_year_family, "variogram",
+                  "a family (not auto) when variogram_params are given", self.variogram)
         if self.depth_zones:
             self.zones()
         return self

@@ -67,7 +67,7 @@ from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
 from coldindex.errors import TooFewDataError
-from coldindex.fitting import Fit, draw_variograms, fit_variogram, with_posterior
+from coldindex.fitting import Fit, draw_variograms, fit_variogram, fixed_fit, with_posterior
 from coldindex.interpolate import (
     CLIP_TOLERANCE,
     Kriging,
@@ -566,7 +566,7 @@ def make_kriging(xy: ArrayLike, values: ArrayLike, variogram: Variogram,
 
 def fit_year(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | None = None,
              method: str = "reml", dense_threshold: int | None = None,
-             subsample: int = FIT_SUBSAMPLE) -> Fit:
+             subsample: int = FIT_SUBSAMPLE, fixed: Variogram | None = None) -> Fit:
     """Fit the year's variogram; above ``dense_threshold`` casts, to a stratified subsample.
 
     Parameters
@@ -577,6 +577,8 @@ def fit_year(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | N
         Most casts fitted whole; None: :data:`DENSE_THRESHOLD`.
     subsample
         Subsample size for dense years (:func:`fit_subsample`).
+    fixed
+        Given parameters: no fit (:func:`coldindex.fitting.fixed_fit`).
 
     Returns
     -------
@@ -588,6 +590,8 @@ def fit_year(xy: ArrayLike, values: ArrayLike, family: str, drift: ArrayLike | N
     Stein, Chi & Welty (2004), J. R. Stat. Soc. B 66, 275-296: likelihoods of
     subsets of the data as estimating equations for large spatial data sets.
     """
+    if fixed is not None:
+        return fixed_fit(family, fixed)
     xy = np.asarray(xy, float)
     z = np.asarray(values, float)
     if len(z) <= (DENSE_THRESHOLD if dense_threshold is None else dense_threshold):
@@ -688,11 +692,11 @@ def simulate(kr: AnyKriging, fit: Fit, xy: FloatArray, z: FloatArray,
     """The year's simulation summaries: in blocks (:func:`simulate_blocked`) when needed.
 
     Exact kriging of a grid small enough for the serial path goes to
-    :func:`coldindex.indices.simulate_summaries` unchanged; local kriging, and
+    :func:`coldindex.simulation.simulate_summaries` unchanged; local kriging, and
     exact kriging when ``cells x max(sims, casts)`` exceeds ``blocked_values``,
     go to :func:`simulate_blocked`. Parameters and returns as those functions.
     """
-    from coldindex.indices import simulate_summaries
+    from coldindex.simulation import simulate_summaries
 
     if isinstance(kr, Kriging) and not needs_blocks(kr, len(cell_area), options.sims,
                                                     blocked_values):
@@ -707,7 +711,7 @@ def simulate_blocked(kr: AnyKriging, fit: Fit, xy: FloatArray, z: FloatArray,
                      cell_area: FloatArray, drift_cells: FloatArray | None, options,
                      rng: np.random.Generator, region_w: FloatArray | None = None,
                      batch: int = 50):
-    """Per-realization summaries as :func:`coldindex.indices.simulate_summaries`, in blocks.
+    """Per-realization summaries as :func:`coldindex.simulation.simulate_summaries`, in blocks.
 
     Same realizations as the serial path for exact kriging (same draws from
     ``rng`` in the same order, same formulas), but the realizations are summed
@@ -742,7 +746,7 @@ def simulate_blocked(kr: AnyKriging, fit: Fit, xy: FloatArray, z: FloatArray,
 
     Returns
     -------
-    coldindex.indices.SimSummaries
+    coldindex.simulation.SimSummaries
         Domain and region summaries per realization, method and note.
 
     References
@@ -750,13 +754,13 @@ def simulate_blocked(kr: AnyKriging, fit: Fit, xy: FloatArray, z: FloatArray,
     Journel & Huijbregts (1978), Mining Geostatistics, ch. VII; Dietrich & Newsam
     (1997), SIAM J. Sci. Comput. 18, 1088-1107.
     """
-    from coldindex.indices import SimSummaries
     from coldindex.regions import node_weights
+    from coldindex.simulation import SimSummaries
 
     n = options.sims
     k = min(options.param_draws, n)
     local = isinstance(kr, LocalKriging)
-    if k > 0 and fit.method != "wls":
+    if k > 0 and fit.method not in ("wls", "fixed"):  # no posterior to draw from
         sub = kr.sub if isinstance(kr, LocalKriging) else np.arange(len(z))
         fit = with_posterior(fit, xy[sub], z[sub], None if drift is None
                              else drift_matrix(len(z), drift)[sub, 1:])

@@ -12,8 +12,8 @@ from scipy.special import ndtr
 from coldindex import dense
 from coldindex.domain import Grid
 from coldindex.fitting import fit_variogram
-from coldindex.indices import simulate_summaries
 from coldindex.interpolate import Kriging, Variogram
+from coldindex.simulation import simulate_summaries
 
 
 def _survey(n: int, seed: int = 3, nugget: float = 0.05):

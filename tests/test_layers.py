@@ -18,8 +18,8 @@ LAYERS = [
     {"io.readers", "io.writers", "io.releases", "io.icefields", "io.profiles",
      "report.summary", "report.text", "report.page", "report.html", "report.figures",
      "gridded", "synthetic"},
-    {"indices", "dense", "covariates", "qc", "classify", "regimes", "skill", "project",
-     "regions", "profiles", "icefields"},
+    {"indices", "dense", "simulation", "covariates", "qc", "classify", "regimes", "skill",
+     "project", "regions", "profiles", "icefields"},
     {"interpolate", "fitting", "stats", "parallel", "domain"},
     {"config", "schema", "errors", "progress", "io.files", "_version"},
 ]

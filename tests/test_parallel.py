@@ -246,3 +246,18 @@ def test_ctrl_c_stops_the_workers_and_leaves_no_process_behind():
     assert proc.returncode == 130 and "interrupted" in out
     _, alive = psutil.wait_procs(children, timeout=30)
     assert not alive
+
+
+def test_fixed_variogram_parameters_hold_every_year_without_draws(survey, box_domain):
+    casts, grid, opts, _ = survey
+    fixed = IndexOptions(**{**opts.model_dump(), "variogram": "exponential",
+                            "variogram_params": (0.8, 30.0, 0.05), "outlier_z": 0.0})
+    res = compute_indices(casts, box_domain, grid, fixed, workers=1)
+    ok = res.table.dropna(subset=["bottom_mean_c"])
+    assert len(ok) == 3  # 2004 has too few casts
+    assert set(ok["variogram"]) == {"exponential(sill=0.8,len_km=30,nugget=0.05)"}
+    assert res.family_scores == {}  # nothing was fitted or chosen
+    with pytest.raises(ConfigError, match="index.variogram needs to be a family"):
+        IndexOptions(variogram_params=(1.0, 30.0, 0.1))
+    with pytest.raises(ConfigError, match="index.variogram_params needs to be three numbers"):
+        IndexOptions(variogram="exponential", variogram_params=(1.0, -30.0, 0.1))
