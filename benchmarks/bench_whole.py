@@ -12,11 +12,10 @@ cells, casts uniform over the box, an exponential field with a nugget):
   one warmed-up GSTools ``CondSRF`` realization on the same grid (realizations
   2..k after one discarded).
 
-Fixed variogram parameters: until the command line carries them, the coldindex
-runs go through this script's ``_index-fixed`` mode, which replaces every entry of
-``coldindex.fitting.FIT_METHODS`` by :func:`coldindex.fitting.fixed_fit` with the
-benchmark's parameters and then runs the ``coldindex`` command line itself
-(``--workers 1``: worker processes would not see the replacement).
+Fixed variogram parameters: the coldindex runs give them on the command line
+(``--variogram FAMILY --variogram-params SILL,LEN_KM,NUGGET --param-draws 0``), so no
+year is fitted; ``--workers`` sets the worker processes of those runs (default 1, like
+the single-process peer).
 
 Peak memory is each process's maximum resident set (``getrusage(RUSAGE_CHILDREN)``
 in a small wrapper process around it). Figures are medians of ``--repeats`` runs.
@@ -119,25 +118,6 @@ def _measure(cmd: list[str]) -> None:
     print(json.dumps({"wall_s": wall, "maxrss_mb": peak}))
 
 
-def _index_fixed(argv: list[str]) -> None:
-    """``coldindex`` with every fit method replaced by the given parameters."""
-    family, sill, len_km, nugget, *rest = argv
-    from coldindex import fitting
-    from coldindex.interpolate import Variogram
-
-    vg = Variogram(family, float(sill), float(len_km), float(nugget))
-
-    def given(xy, values, fam, drift=None, posterior=False, **_kw):  # noqa: ANN001
-        return fitting.fixed_fit(fam, vg)
-
-    for name in list(fitting.FIT_METHODS):
-        fitting.FIT_METHODS[name] = given
-    sys.argv = ["coldindex", *rest]
-    from coldindex.cli import main
-
-    main()
-
-
 def _condsrf(argv: list[str]) -> None:
     """Seconds of GSTools CondSRF realizations on one year's casts (first one discarded)."""
     import gstools as gs
@@ -161,9 +141,9 @@ def _condsrf(argv: list[str]) -> None:
 
 
 def _coldindex(work: Path, sims: int, workers: int, name: str) -> list[str]:
-    return [sys.executable, __file__, "_index-fixed", FAMILY, str(SILL), str(LEN_KM),
-            str(NUGGET), "index", str(work / "casts.csv"), "--out", str(work / name),
-            "--domain", str(work / "domain.geojson"), "--variogram", FAMILY,
+    return [sys.executable, "-m", "coldindex.cli", "index", str(work / "casts.csv"),
+            "--out", str(work / name), "--domain", str(work / "domain.geojson"),
+            "--variogram", FAMILY, "--variogram-params", f"{SILL},{LEN_KM},{NUGGET}",
             "--param-draws", "0", "--sims", str(sims), "--workers", str(workers)]
 
 
@@ -180,8 +160,8 @@ def run_ratios(args: argparse.Namespace) -> None:
                 str(work / "cells.npz"), str(work / "peer.csv"), "--family", FAMILY,
                 "--sill", str(SILL), "--len-km", str(LEN_KM), "--nugget", str(NUGGET)]
         t_peer, m_peer = measured(peer, args.repeats)
-        t0, m0 = measured(_coldindex(work, 0, 1, "sims0"), args.repeats)
-        t1, m1 = measured(_coldindex(work, args.sims, 1, "simsN"), args.repeats)
+        t0, m0 = measured(_coldindex(work, 0, args.workers, "sims0"), args.repeats)
+        t1, m1 = measured(_coldindex(work, args.sims, args.workers, "simsN"), args.repeats)
         res = subprocess.run([sys.executable, __file__, "_condsrf", str(work / "peer_casts.csv"),
                               str(work / "grid.json"), str(args.condsrf)], check=True,
                              capture_output=True, text=True)
@@ -245,9 +225,9 @@ def run_sample(args: argparse.Namespace) -> None:
 
 
 def main() -> None:
-    if len(sys.argv) > 1 and sys.argv[1] in ("_measure", "_index-fixed", "_condsrf"):
+    if len(sys.argv) > 1 and sys.argv[1] in ("_measure", "_condsrf"):
         mode, rest = sys.argv[1], sys.argv[2:]
-        {"_measure": _measure, "_index-fixed": _index_fixed, "_condsrf": _condsrf}[mode](rest)
+        {"_measure": _measure, "_condsrf": _condsrf}[mode](rest)
         return
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--years", type=int, default=44)
@@ -256,6 +236,7 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--condsrf", type=int, default=5, help="CondSRF realizations (first dropped)")
     ap.add_argument("--seed", type=int, default=15)
+    ap.add_argument("--workers", type=int, default=1, help="worker processes of coldindex")
     ap.add_argument("--sample", action="store_true", help="time the sample's index and demo")
     ap.add_argument("--keep", action="store_true", help="keep the synthetic survey's folder")
     args = ap.parse_args()
