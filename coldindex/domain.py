@@ -16,7 +16,6 @@ import numpy as np
 import pyproj
 import shapely
 from numpy.typing import ArrayLike, NDArray
-from scipy.interpolate import RegularGridInterpolator
 from scipy.spatial import cKDTree
 from shapely.geometry import MultiPolygon, Polygon, mapping, shape
 from shapely.geometry.base import BaseGeometry
@@ -402,6 +401,8 @@ def sample_lonlat_grid(lon_axis: ArrayLike, lat_axis: ArrayLike, values: ArrayLi
         lo, v = lo[order], v[:, order]
     if la[0] > la[-1]:
         la, v = la[::-1], v[::-1, :]
+    from scipy.interpolate import RegularGridInterpolator  # only the bathymetry needs it
+
     interp = RegularGridInterpolator((la, lo), v, bounds_error=False, fill_value=np.nan)
     pts = np.column_stack([np.asarray(lat, float).ravel(),
                            unwrap_lon(np.asarray(lon, float).ravel(), center)])

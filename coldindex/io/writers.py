@@ -213,7 +213,7 @@ def write_netcdf(ds: xr.Dataset, target: Path) -> Path:
     import dask.array as da
 
     lazy = [str(name) for name, v in ds.data_vars.items() if isinstance(v.data, da.Array)]
-    encoding = {name: {"zlib": True, "complevel": 4} for name, v in ds.data_vars.items()
+    encoding = {name: {"zlib": True, "complevel": 1} for name, v in ds.data_vars.items()
                 if v.dtype.kind == "f" and name not in lazy}
 
     def write(p: Path) -> None:
@@ -234,7 +234,7 @@ def _append_lazy(path: Path, ds: xr.Dataset, names: Sequence[str]) -> None:
             lead = int(v.data.chunks[0][0]) if v.shape[0] else 1
             fill = np.array(np.nan, dtype=v.dtype) if v.dtype.kind == "f" else None
             var = nc.createVariable(name, str(v.dtype), tuple(str(d) for d in v.dims),
-                                    zlib=True, complevel=4,
+                                    zlib=True, complevel=1,
                                     chunksizes=(lead, *v.shape[1:]) if v.size else None,
                                     fill_value=fill)
             var.setncatts(dict(v.attrs))
