@@ -7,7 +7,8 @@ import pytest
 from coldindex.config import IndexOptions
 from coldindex.domain import make_grid
 from coldindex.errors import InputError
-from coldindex.indices import compute_indices, weighted_summaries
+from coldindex.indices import compute_indices
+from coldindex.interpolate import weighted_summaries
 from coldindex.qc import run_qc
 from coldindex.regions import (
     combine,
