@@ -481,6 +481,19 @@ def circulant_embedding(shape: tuple[int, int], cell_km: float, variogram: Vario
     return Embedding(root=root, shape=(ny, nx), clipped_share=clipped, pad_factor=factor)
 
 
+THREAD_LIMIT = [2]
+"""Most OS threads the simulations' own pools use (a one-item list, set process-wide).
+
+Results never depend on it: the draws are split into a fixed number of streams and the
+conditioning writes disjoint cells. :func:`coldindex.parallel.run_pinned` sets it to the
+task's pin (one thread), so ``--workers N`` uses N cores and no more.
+"""
+
+
+def _pool_size(threads: int) -> int:
+    return max(1, min(threads, THREAD_LIMIT[0]))
+
+
 def unconditional_fields(emb: Embedding, n: int, rng: np.random.Generator,
                          threads: int = 2) -> FloatArray:
     """Draw ``n`` unconditional realizations of the smooth process on the grid.
@@ -518,8 +531,8 @@ def unconditional_fields(emb: Embedding, n: int, rng: np.random.Generator,
             if i + 1 < n:
                 out[i + 1] = field.imag
 
-    with ThreadPoolExecutor(max_workers=threads) as pool:
-        list(pool.map(work, range(threads)))
+    with ThreadPoolExecutor(max_workers=_pool_size(threads)) as pool:
+        list(pool.map(work, range(threads)))  # `threads` streams, however many OS threads
     return out
 
 
@@ -755,8 +768,8 @@ def _condition(out: FloatArray, kriging: Kriging, X: FloatArray, f0: FloatArray,
         blk -= corr.T
 
     starts = range(0, m, _COND_CELLS)
-    if threads > 1 and len(starts) > 1:
-        with ThreadPoolExecutor(max_workers=threads) as pool:
+    if _pool_size(threads) > 1 and len(starts) > 1:
+        with ThreadPoolExecutor(max_workers=_pool_size(threads)) as pool:
             list(pool.map(block, starts))
     else:
         for start in starts:

@@ -35,6 +35,7 @@ from typing import Any, TypeVar
 from threadpoolctl import threadpool_limits
 
 from coldindex.errors import ConfigError, StageError
+from coldindex.interpolate import THREAD_LIMIT
 
 T = TypeVar("T")
 R = TypeVar("R")
@@ -58,6 +59,7 @@ _SHARED: Any = None
 _PIN_LOCK = threading.Lock()
 _PIN_DEPTH = 0
 _PIN_CONTROL: threadpool_limits | None = None
+_PIN_OWN = 2  # the simulations' own thread limit before the first task pinned it
 
 
 def default_workers() -> int:
@@ -96,10 +98,12 @@ def _pinned(blas_threads: int) -> Iterator[None]:
     with several threads) the first to start sets it and the last to end restores the
     original, so no task runs with the pool another task's end restored.
     """
-    global _PIN_DEPTH, _PIN_CONTROL
+    global _PIN_DEPTH, _PIN_CONTROL, _PIN_OWN
     with _PIN_LOCK:
         if _PIN_DEPTH == 0:
             _PIN_CONTROL = threadpool_limits(limits=blas_threads)
+            _PIN_OWN = THREAD_LIMIT[0]  # the simulations' own thread pools follow the pin
+            THREAD_LIMIT[0] = blas_threads
         _PIN_DEPTH += 1
     try:
         yield
@@ -109,6 +113,7 @@ def _pinned(blas_threads: int) -> Iterator[None]:
             if _PIN_DEPTH == 0 and _PIN_CONTROL is not None:
                 _PIN_CONTROL.restore_original_limits()
                 _PIN_CONTROL = None
+                THREAD_LIMIT[0] = _PIN_OWN
 
 
 def run_pinned(func: Callable[[Any, T], R], shared: Any, item: T,

@@ -281,3 +281,18 @@ def test_unconditional_fields_equal_the_plain_fft2_of_the_same_draws():
             if i + 1 < 7:
                 ref[i + 1] = f.imag
     np.testing.assert_allclose(got, ref, atol=1e-5)  # float32 transforms of two libraries
+
+
+def test_simulations_do_not_depend_on_how_many_os_threads_run_them():
+    # --workers N pins every task to one thread; the draws must not change with it.
+    from coldindex.interpolate import THREAD_LIMIT
+
+    emb = circulant_embedding((NY, NX), CELL, Variogram("exponential", 0.7, 20.0, 0.0))
+    two = unconditional_fields(emb, 9, np.random.default_rng(5))
+    old = THREAD_LIMIT[0]
+    THREAD_LIMIT[0] = 1
+    try:
+        one = unconditional_fields(emb, 9, np.random.default_rng(5))
+    finally:
+        THREAD_LIMIT[0] = old
+    assert np.array_equal(one, two)
