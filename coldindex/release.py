@@ -35,9 +35,6 @@ from coldindex.io import readers, releases, writers
 from coldindex.io.releases import RELEASE_FORMAT
 from coldindex.report.summary import WITHDRAWN_SHIFT
 
-UPDATE_STAGES = ("check", "index", "classify", "shifts", "skill", "project", "covariates",
-                 "revisions", "figures", "report")
-
 
 @dataclass
 class UpdateRun:

@@ -115,9 +115,8 @@ map_years = 1
 """
 
 
-@pytest.fixture(scope="module")
-def good(tmp_path_factory) -> Path:
-    d = tmp_path_factory.mktemp("good")
+def good_inputs(d: Path) -> Path:
+    """Small valid inputs of every kind in ``d``: casts, domain, series, ice, trajectories."""
     synthetic_casts(years=(2001, 2002, 2003, 2004), n_side=6).to_csv(d / "casts.csv",
                                                                      index=False)
     _domain(d / "domain.geojson")
@@ -127,6 +126,11 @@ def good(tmp_path_factory) -> Path:
     _cuts(d / "cuts.json")
     (d / "coldindex.toml").write_text(CONFIG)
     return d
+
+
+@pytest.fixture(scope="module")
+def good(tmp_path_factory) -> Path:
+    return good_inputs(tmp_path_factory.mktemp("good"))
 
 
 def invoke(args: list) -> tuple[int, str]:

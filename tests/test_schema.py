@@ -18,7 +18,7 @@ from coldindex.schema import (
     render_outputs_md,
     threshold_label,
 )
-from tests.conftest import ROOT, SAMPLE, synthetic_casts
+from tests.conftest import ROOT, SAMPLE
 
 
 def test_threshold_labels_are_shortest_form():
@@ -98,18 +98,11 @@ def test_variable_layouts_follow_their_builders():
 def written(tmp_path_factory) -> tuple[Path, dict[str, str]]:
     """Every command run once on small inputs (the hostile battery's), its outputs kept."""
     from coldindex.cli import app
-    from tests.test_hostile import CONFIG, _domain, _ice, _series, _traj
+    from tests.test_hostile import good_inputs
     from tests.test_regions import EAST_N, EAST_S, WEST, _collection
 
-    d = tmp_path_factory.mktemp("schema")
-    synthetic_casts(years=(2001, 2002, 2003, 2004), n_side=6).to_csv(d / "casts.csv",
-                                                                     index=False)
-    _domain(d / "domain.geojson")
-    _series(d / "series.csv")
-    _ice(d / "ice.csv")
-    _traj(d / "traj.csv")
+    d = good_inputs(tmp_path_factory.mktemp("schema"))
     (d / "regions.geojson").write_text(json.dumps(_collection(WEST, EAST_S, EAST_N)))
-    (d / "coldindex.toml").write_text(CONFIG)
     casts, dom = str(d / "casts.csv"), str(d / "domain.geojson")
     runs = {
         "check": ["check", casts, "--domain", dom, "--min-casts", "20"],

@@ -217,7 +217,11 @@ def write_netcdf(ds: xr.Dataset, target: Path) -> Path:
                 if v.dtype.kind == "f" and name not in lazy}
 
     def write(p: Path) -> None:
-        ds.drop_vars(lazy).to_netcdf(p, engine="netcdf4", encoding=encoding)
+        import dask
+
+        # In this process, never on a dask client a run may have started or left behind.
+        with dask.config.set(scheduler="synchronous"):
+            ds.drop_vars(lazy).to_netcdf(p, engine="netcdf4", encoding=encoding)
         if lazy:
             _append_lazy(p, ds, lazy)
 
