@@ -493,7 +493,7 @@ def fixed_fit(family: str, variogram: Variogram) -> Fit:
 
 def fit_variogram(xy: ArrayLike, values: ArrayLike, family: str,
                   drift: ArrayLike | None = None, method: str = "reml",
-                  posterior: bool = False, fixed: Variogram | None = None) -> Fit:
+                  posterior: bool = False) -> Fit:
     """Fit a variogram by a registered method (see :data:`FIT_METHODS`).
 
     Parameters
@@ -510,16 +510,12 @@ def fit_variogram(xy: ArrayLike, values: ArrayLike, family: str,
         ``reml`` (default), ``ml`` or ``wls``.
     posterior
         Tabulate the parameter posterior (likelihood methods).
-    fixed
-        Given parameters: no fit at all (:func:`fixed_fit`, ``method`` is then ignored).
 
     Returns
     -------
     Fit
         The fit.
     """
-    if fixed is not None:
-        return fixed_fit(family, fixed)
     if method not in FIT_METHODS:
         raise ValueError(f"method needs to be one of {', '.join(FIT_METHODS)}, got: {method!r}")
     return FIT_METHODS[method](xy, values, family, drift, posterior=posterior)

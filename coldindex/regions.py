@@ -21,7 +21,6 @@ import shapely
 from numpy.typing import ArrayLike, NDArray
 from shapely.geometry import MultiPolygon, Polygon, shape
 
-from coldindex.config import MAX_ZONES, parse_depth_zones  # noqa: F401 - the zones' parser
 from coldindex.domain import Domain, Grid, _map_coords, unwrap_lon
 from coldindex.errors import InputError
 

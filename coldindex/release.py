@@ -411,15 +411,9 @@ def _provenance(cfg: Config, prev: Path | None, index: Any) -> dict:
     """Everything a later release needs to explain its revisions."""
     from coldindex.qc import year_hashes
 
-    casts_path = cfg.inputs.casts or cfg.inputs.profiles
-    assert casts_path is not None
-    inputs = {"profiles" if cfg.inputs.profiles else "casts": writers.sha256_file(casts_path)}
-    for key, p in cfg.inputs.files().items():
-        name = key.removeprefix("inputs.")
-        if name not in ("casts", "profiles", "coastline") and not name.startswith("trajectories"):
-            inputs[name] = writers.sha256_file(p)
-    for k, p in enumerate(cfg.inputs.trajectories):
-        inputs[f"trajectories[{k}]"] = writers.sha256_file(p)
+    # Every input that can move a number (the coastline only draws), by its config name.
+    inputs = {key.removeprefix("inputs."): writers.sha256_file(p)
+              for key, p in cfg.inputs.files().items() if key != "inputs.coastline"}
     return {"tool": "coldindex", "version": __version__, "release_format": RELEASE_FORMAT,
             "config": config_record(cfg), "parameters": cfg.index.model_dump(mode="json"),
             "inputs_sha256": inputs,

@@ -10,6 +10,7 @@ from scipy.linalg import null_space
 from scipy.spatial.distance import cdist
 from scipy.stats import multivariate_normal
 
+from coldindex.dense import fit_year
 from coldindex.fitting import (
     _Profile,
     draw_variograms,
@@ -196,7 +197,7 @@ def test_a_matrix_that_is_not_positive_definite_is_infinite_not_an_error():
 def test_fixed_fit_is_given_not_estimated():
     xy, z, _ = field(5, n=40)
     vg = Variogram("exponential", 0.7, 90.0, 0.02)
-    fit = fit_variogram(xy, z, "spherical", fixed=vg)
+    fit = fit_year(xy, z, "spherical", fixed=vg)  # the year's fit: given, not estimated
     assert fit.method == "fixed" and fit.posterior is None
     assert fit.variogram == Variogram("spherical", 0.7, 90.0, 0.02)
     assert draw_variograms(fit, 3, np.random.default_rng(0)) == [fit.variogram] * 3

@@ -4,7 +4,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from coldindex.config import IndexOptions
+from coldindex.config import IndexOptions, parse_depth_zones
 from coldindex.domain import make_grid
 from coldindex.errors import InputError
 from coldindex.indices import compute_indices
@@ -14,7 +14,6 @@ from coldindex.regions import (
     combine,
     depth_zone_weights,
     node_weights,
-    parse_depth_zones,
     region_weights,
     regions_from_geojson,
 )
