@@ -5,7 +5,7 @@ Synthetic series of n = 50 years, white noise or AR(1) with lag-1 autocorrelatio
 step at mid-series (the 26th year is the first of the new regime) or at a year drawn
 uniformly from [cutoff, n - cutoff] (the 11th to the 41st year); and a temporary regime:
 2 marginal SDs from the 18th to the 34th year (17 years), then back. Every series goes
-through the package's own machinery with default settings (``ShiftOptions()``): the
+through the package's own machinery with default settings (``ShiftsConfig()``): the
 detector, the shift statistics (``regimes.shift_t_statistics``), the AR(1) null fitted
 to the series (``regimes.lag1_rows``, ``regimes.null_series``) and the min-p combination
 (``regimes.combined_p_values``).
@@ -41,13 +41,12 @@ Run: python benchmarks/shift_size_power.py [--series 2000] [--seed 2026] [--nois
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import time
 
 import numpy as np
 
+from coldindex.config import ShiftsConfig
 from coldindex.regimes import (
-    ShiftOptions,
     combined_p_values,
     detect_rows,
     detect_shifts,
@@ -66,7 +65,7 @@ METHODS = ("stars", "pelt")
 EPISODE = (17, 34)  # the temporary regime: the 18th to the 34th year
 
 
-def statistics(X: np.ndarray, method: str, opts: ShiftOptions, rho: float | None = None
+def statistics(X: np.ndarray, method: str, opts: ShiftsConfig, rho: float | None = None
                ) -> tuple[np.ndarray, np.ndarray]:
     """Largest (local, whole-record) t pair and largest previous statistic of every row.
 
@@ -105,7 +104,7 @@ def series(phi: float, step: float, where: str, size: int, rng: np.random.Genera
 
 
 def cell(phi: float, step: float, where: str, size: int, seed: list[int],
-         opts: ShiftOptions) -> dict[str, float]:
+         opts: ShiftsConfig) -> dict[str, float]:
     rng = np.random.default_rng(np.random.SeedSequence(seed))
     X = series(phi, step, where, size, rng, opts.cutoff)
     phis = lag1_rows(X, opts.null_window)
@@ -131,14 +130,14 @@ def cell(phi: float, step: float, where: str, size: int, seed: list[int],
 
 
 def full_bootstrap(phi: float, step: float, size: int, boot: int, seed: list[int],
-                   opts: ShiftOptions) -> dict[str, float]:
+                   opts: ShiftsConfig) -> dict[str, float]:
     """Share of series with a shift of p < LEVEL, each series with its own bootstrap."""
     rng = np.random.default_rng(np.random.SeedSequence(seed))
     X = series(phi, step, "mid", size, rng, opts.cutoff)
     years = np.arange(1971, 1971 + N)
     hits = dict.fromkeys(METHODS, 0)
     for i, x in enumerate(X):
-        res = detect_shifts(years, x, METHODS, dataclasses.replace(opts, boot=boot, seed=i))
+        res = detect_shifts(years, x, METHODS, opts.model_copy(update=dict(boot=boot, seed=i)))
         for m in METHODS:
             p = res.shifts.loc[res.shifts["method"] == m, "p_value"]
             hits[m] += bool((p < LEVEL).any())
@@ -157,9 +156,9 @@ def main() -> None:
     ap.add_argument("--noise", choices=("white", "ar1", "both"), default="both",
                     help="noise of the warp-speed table's cells")
     ap.add_argument("--prewhiten", choices=("none", "mpk", "ip4"), default="none",
-                    help="ShiftOptions.prewhiten for the warp-speed table")
+                    help="ShiftsConfig.prewhiten for the warp-speed table")
     args = ap.parse_args()
-    opts = ShiftOptions(prewhiten=args.prewhiten)
+    opts = ShiftsConfig(prewhiten=args.prewhiten)
     cases = [("none", 0.0, "mid")] + [(f"{s:g} SD, mid-series", s, "mid") for s in (1, 2, 3)]
     cases += [(f"{s:g} SD, uniform in [{opts.cutoff}, {N - opts.cutoff}]", s, "uniform")
               for s in (1, 2, 3)]

@@ -438,16 +438,12 @@ def run_classify(series_path: Path, column: str, options: ClassifyConfig,
 def run_shifts(series_path: Path, column: str, options: ShiftsConfig,
                mapping: Mapping[str, str] | None = None) -> StageRun:
     """Regime shifts of one column with red-noise p-values: ``shifts.csv``, ``regimes.csv``."""
-    from coldindex.regimes import ShiftOptions, detect_shifts
+    from coldindex.regimes import detect_shifts
 
     df = readers.read_series(series_path, column, mapping)
     need = 2 * options.cutoff if "stars" in options.methods else 2 * options.min_size
     _enough(int(df["value"].notna().sum()), need, column, "shift test")
-    res = detect_shifts(df["year"], df["value"], options.methods, ShiftOptions(
-        cutoff=options.cutoff, alpha=options.alpha, huber=options.huber,
-        prewhiten=options.prewhiten, subsample=options.subsample or None,
-        min_size=options.min_size, boot=options.boot, seed=options.seed,
-        null_window=options.null_window, p_max=options.p_max))
+    res = detect_shifts(df["year"], df["value"], options.methods, options)
     return StageRun({"shifts.csv": res.shifts, "regimes.csv": res.regimes}, result=res)
 
 

@@ -92,53 +92,14 @@ from numpy.lib.stride_tricks import sliding_window_view
 from numpy.typing import ArrayLike, NDArray
 from scipy import stats as sps
 
-from coldindex.errors import InputError
+from coldindex.config import ShiftsConfig
+from coldindex.errors import InputError, TooFewDataError
 from coldindex.schema import REGIMES, SHIFTS
 from coldindex.stats import lag1_autocorrelation, lag1_subsample_median, simulate_ar1
 
 FloatArray = NDArray[np.float64]
 METHODS = ("stars", "pelt")
 SHIFT_COLUMNS = list(SHIFTS.names)  # method, year, means, t_stat, p_value, rsi, provisional
-
-
-@dataclass(frozen=True)
-class ShiftOptions:
-    """Settings of both detectors, of the bootstrap and of the verdict.
-
-    ``alpha`` is STARS' own detection level (the t-test that sets its threshold);
-    ``p_max`` is the largest family-wise p-value for a shift to *survive* the
-    red-noise test, for either method.
-    """
-
-    cutoff: int = 10
-    alpha: float = 0.1
-    huber: float = 1.0
-    prewhiten: str = "none"
-    subsample: int | None = None
-    min_size: int = 5
-    boot: int = 999
-    seed: int = 20261201
-    null_window: int = 15
-    p_max: float = 0.05
-
-    def __post_init__(self) -> None:
-        if self.cutoff < 2:
-            raise InputError(f"--cutoff needs to be >= 2, got: {self.cutoff}.")
-        if not 0 < self.alpha < 1:
-            raise InputError(f"--alpha needs to be in (0, 1), got: {self.alpha}.")
-        if not 0 < self.p_max < 1:
-            raise InputError(f"--p-max needs to be in (0, 1), got: {self.p_max}.")
-        if self.huber <= 0:
-            raise InputError(f"--huber needs to be > 0, got: {self.huber}.")
-        if self.prewhiten not in ("none", "ip4", "mpk"):
-            raise InputError(f"--prewhiten needs to be none, ip4 or mpk, got: "
-                             f"{self.prewhiten!r}.")
-        if self.min_size < 2:
-            raise InputError(f"--min-size needs to be >= 2, got: {self.min_size}.")
-        if self.null_window < 5:
-            raise InputError(f"--null-window needs to be >= 5, got: {self.null_window}.")
-        if self.boot < 0:
-            raise InputError(f"--boot needs to be >= 0, got: {self.boot}.")
 
 
 def _huber_mean(x: FloatArray, sigma: float, huber: float) -> float:
@@ -186,8 +147,9 @@ def stars(x: ArrayLike, cutoff: int = 10, alpha: float = 0.1, huber: float = 1.0
     v = np.asarray(x, float)
     n, ell = len(v), int(cutoff)
     if n < 2 * ell:
-        raise InputError(f"STARS needs a series at least twice the cut-off length ({2 * ell} "
-                         f"values), got {n}; lower --cutoff.")
+        raise TooFewDataError(f"STARS needs a series at least twice the cut-off length "
+                              f"({2 * ell} values), got {n}; lower {{option}}.",
+                              option=("shifts", "cutoff"))
     sigma2 = float(sliding_window_view(v, ell).var(axis=1, ddof=1).mean())
     sigma = np.sqrt(sigma2)
     if sigma == 0:
@@ -631,14 +593,14 @@ def prewhiten(x: ArrayLike, method: str, subsample: int) -> tuple[FloatArray, fl
     return v[1:] - rho * v[:-1], rho
 
 
-def _detect(v: FloatArray, method: str, opts: ShiftOptions) -> tuple[list[int], list[float]]:
+def _detect(v: FloatArray, method: str, opts: ShiftsConfig) -> tuple[list[int], list[float]]:
     """One series through a detector: starts of new regimes and (STARS) their RSIs."""
     if method == "stars":
         return stars(v, opts.cutoff, opts.alpha, opts.huber)
     return pelt(v, opts.min_size), []
 
 
-def detect_rows(X: ArrayLike, method: str, opts: ShiftOptions) -> list[list[int]]:
+def detect_rows(X: ArrayLike, method: str, opts: ShiftsConfig) -> list[list[int]]:
     """Run one detector on every row of X (data and null alike).
 
     PELT rows are segmented together by :func:`optimal_partition_batch`, which
@@ -651,7 +613,7 @@ def detect_rows(X: ArrayLike, method: str, opts: ShiftOptions) -> list[list[int]
     return [_detect(x, method, opts)[0] for x in X]
 
 
-def max_shift_statistics(X: ArrayLike, method: str, opts: ShiftOptions) -> FloatArray:
+def max_shift_statistics(X: ArrayLike, method: str, opts: ShiftsConfig) -> FloatArray:
     """Largest local and largest whole-record t of each row after detection (0 without a shift).
 
     This is the bootstrap's statistic: applied to null series it gives the null
@@ -670,7 +632,7 @@ def max_shift_statistics(X: ArrayLike, method: str, opts: ShiftOptions) -> Float
                      for a, b in zip(local, record, strict=True)]).reshape(len(X), 2)
 
 
-def null_series(n: int, phi: float, opts: ShiftOptions, rng: np.random.Generator,
+def null_series(n: int, phi: float, opts: ShiftsConfig, rng: np.random.Generator,
                 size: int) -> FloatArray:
     """AR(1) null series as the detector would see them (prewhitened when asked).
 
@@ -755,7 +717,7 @@ def surviving(shifts: pd.DataFrame, p_max: float) -> pd.DataFrame:
 
 
 def detect_shifts(years: ArrayLike, values: ArrayLike, methods: tuple[str, ...] = METHODS,
-                  opts: ShiftOptions | None = None) -> ShiftResult:
+                  opts: ShiftsConfig | None = None) -> ShiftResult:
     """Detect regime shifts with each method and give each its bootstrap p-value.
 
     Parameters
@@ -773,7 +735,7 @@ def detect_shifts(years: ArrayLike, values: ArrayLike, methods: tuple[str, ...] 
     ShiftResult
         Shifts, regimes and the fitted null.
     """
-    opts = opts or ShiftOptions()
+    opts = opts or ShiftsConfig()
     y = np.asarray(years, dtype=int)
     v = np.asarray(values, float)
     if len(np.unique(y)) != len(y):
@@ -801,7 +763,8 @@ def detect_shifts(years: ArrayLike, values: ArrayLike, methods: tuple[str, ...] 
     shift_rows, regime_rows = [], []
     for method in methods:
         if method not in METHODS:
-            raise InputError(f"--method needs to be stars, pelt or both, got: {method!r}.")
+            raise InputError(f"{{option}} needs to be stars, pelt or both, got: {method!r}.",
+                             option=("shifts", "method"))
         starts, rsis = _detect(work, method, opts)
         # The statistics on the series the detector saw; means on the original series.
         local, record = (a[0] for a in shift_t_statistics(work, [starts]))

@@ -2,10 +2,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from coldindex.errors import InputError
+from coldindex.errors import ConfigError, InputError, TooFewDataError
 from coldindex.regimes import (
     SHIFT_COLUMNS,
-    ShiftOptions,
+    ShiftsConfig,
     combined_p_values,
     detect_rows,
     detect_shifts,
@@ -75,7 +75,7 @@ def test_data_and_null_share_one_optimiser_and_statistic():
     # gives exactly the breaks and the statistic that detect_shifts reports for it.
     X = simulate_ar1(0.5, 50, 30, np.random.default_rng(11))
     X[::3, 30:] += 2.0
-    opts = ShiftOptions(boot=0)
+    opts = ShiftsConfig(boot=0)
     batch = {m: detect_rows(X, m, opts) for m in ("stars", "pelt")}
     tmax = {m: max_shift_statistics(X, m, opts) for m in ("stars", "pelt")}
     for i, x in enumerate(X):
@@ -225,7 +225,7 @@ def test_random_streams_are_keyed_by_method_name():
     rng = np.random.default_rng(8)
     x = simulate_ar1(0.5, 50, 1, rng)[0]
     x[30:] += 1.2
-    opts = ShiftOptions(boot=199, seed=5)
+    opts = ShiftsConfig(boot=199, seed=5)
 
     def p(methods):
         sh = detect_shifts(YEARS, x, methods, opts).shifts
@@ -245,16 +245,16 @@ def test_provisional_shifts_near_the_end():
     x = rng.normal(0, 0.2, 50)
     x[39:] += 3.0
     x[44:] += 3.0
-    res = detect_shifts(YEARS, x, ("pelt",), ShiftOptions(boot=0))
+    res = detect_shifts(YEARS, x, ("pelt",), ShiftsConfig(boot=0))
     flags = dict(zip(res.shifts["year"], res.shifts["provisional"], strict=True))
     assert flags == {2010: False, 2015: True}
     assert res.shifts["provisional"].dtype == bool
     # The boundary: a regime of exactly `cutoff` years is provisional, one year more is not.
     x = rng.normal(0, 0.2, 50)
     x[40:] += 4.0  # first year 2011 = last year 2020 - 10 + 1
-    sh = detect_shifts(YEARS, x, ("pelt",), ShiftOptions(boot=0)).shifts
+    sh = detect_shifts(YEARS, x, ("pelt",), ShiftsConfig(boot=0)).shifts
     assert sh["year"].tolist() == [2011] and sh["provisional"].tolist() == [True]
-    sh = detect_shifts(YEARS, x, ("pelt",), ShiftOptions(boot=0, cutoff=9)).shifts
+    sh = detect_shifts(YEARS, x, ("pelt",), ShiftsConfig(boot=0, cutoff=9)).shifts
     assert sh["provisional"].tolist() == [False]
 
 
@@ -276,24 +276,24 @@ def test_p_max_is_the_verdict_and_alpha_stays_stars_level():
     rng = np.random.default_rng(21)
     x = simulate_ar1(0.3, 50, 1, rng)[0]
     x[25:] += 1.3
-    base = detect_shifts(YEARS, x, opts=ShiftOptions(boot=199))
+    base = detect_shifts(YEARS, x, opts=ShiftsConfig(boot=199))
     p = base.shifts["p_value"]
     assert ((p > 0.005) & (p < 0.5)).any()
     for p_max in (0.005, 0.05, 0.5):
-        res = detect_shifts(YEARS, x, opts=ShiftOptions(boot=199, p_max=p_max))
+        res = detect_shifts(YEARS, x, opts=ShiftsConfig(boot=199, p_max=p_max))
         pd.testing.assert_frame_equal(res.shifts, base.shifts)  # detection and p unchanged
         assert res.surviving().equals(res.shifts[res.shifts["p_value"] < p_max])
     # STARS' alpha changes what STARS detects, not the verdict threshold.
-    loose = detect_shifts(YEARS, x, ("stars",), ShiftOptions(boot=0, alpha=0.5))
-    strict = detect_shifts(YEARS, x, ("stars",), ShiftOptions(boot=0, alpha=0.01))
+    loose = detect_shifts(YEARS, x, ("stars",), ShiftsConfig(boot=0, alpha=0.5))
+    strict = detect_shifts(YEARS, x, ("stars",), ShiftsConfig(boot=0, alpha=0.01))
     assert len(loose.shifts) > len(strict.shifts)
     assert loose.p_max == strict.p_max == 0.05
-    with pytest.raises(InputError, match="--p-max needs to be in"):
-        ShiftOptions(p_max=1.0)
+    with pytest.raises(ConfigError, match="shifts.p_max needs to be a value in"):
+        ShiftsConfig(p_max=1.0)
 
 
 def test_bad_series():
-    with pytest.raises(InputError, match="at least twice the cut-off"):
+    with pytest.raises(TooFewDataError, match="at least twice the cut-off.*lower shifts.cutoff"):
         detect_shifts(np.arange(15), np.arange(15.0), ("stars",))
     with pytest.raises(InputError, match="constant"):
         detect_shifts(np.arange(30), np.ones(30))
@@ -308,7 +308,7 @@ def test_gaps_are_closed_up_and_listed():
     v[10] = np.nan
     yrs = np.delete(YEARS, 30)
     vals = np.delete(v, 30)
-    res = detect_shifts(yrs[::-1], vals[::-1], ("pelt",), ShiftOptions(boot=0))
+    res = detect_shifts(yrs[::-1], vals[::-1], ("pelt",), ShiftsConfig(boot=0))
     assert res.skipped_years == [1981, 2001]
     assert list(res.shifts["year"]) == [1996]
     assert list(res.shifts.columns) == SHIFT_COLUMNS
@@ -325,7 +325,7 @@ def test_prewhitening_reduces_red_noise():
 def test_prewhitened_null_has_the_length_the_detector_sees():
     x = simulate_ar1(0.5, 50, 1, np.random.default_rng(6))[0]
     x[25:] += 3.0
-    opts = ShiftOptions(boot=99, prewhiten="mpk")
+    opts = ShiftsConfig(boot=99, prewhiten="mpk")
     assert null_series(50, 0.5, opts, np.random.default_rng(0), 4).shape == (4, 49)
     res = detect_shifts(YEARS, x, ("pelt",), opts)
     assert res.prewhiten_rho is not None and (res.shifts["p_value"] < 0.05).any()
@@ -338,7 +338,7 @@ def warp_speed_rates(phi, step, size, seed, episode=False, previous=True):
     (local and whole-record GLS t, min-p) and, as ``<method> previous``, the earlier
     statistic (adjacent-regime two-sample t with effective sizes) on the same detections and
     replicates."""
-    opts = ShiftOptions()
+    opts = ShiftsConfig()
     rng = np.random.default_rng(seed)
     X = simulate_ar1(phi, 50, size, rng)
     if episode:
